@@ -4,7 +4,8 @@ Hierarchy::
 
     DebtsimError                 root: the CLI catches this and exits with status 2
     ├── BookError                the book (or a scenario file) is invalid; carries every problem
-    └── EngineRefusedError       an engine cannot run this book (too large, wrong shape)
+    ├── EngineRefusedError       an engine cannot run this book (too large, wrong shape)
+    └── OutputError              an output folder cannot be written (exists, not ours)
 
     DebtsimWarning               root of the domain warnings
     └── DiscretisationWarning    a grid or node set is coarse for the book
@@ -20,6 +21,7 @@ __all__ = [
     "DebtsimWarning",
     "DiscretisationWarning",
     "EngineRefusedError",
+    "OutputError",
     "Problem",
 ]
 
@@ -70,6 +72,10 @@ class BookError(DebtsimError):
 
 class EngineRefusedError(DebtsimError):
     """An engine declines a book it cannot compute (e.g. too many qubits)."""
+
+
+class OutputError(DebtsimError):
+    """An output folder cannot be written, e.g. it exists and is not a debtsim output."""
 
 
 class DebtsimWarning(UserWarning):

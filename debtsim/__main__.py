@@ -1,0 +1,5 @@
+"""``python -m debtsim``."""
+
+from debtsim.cli import main
+
+main()

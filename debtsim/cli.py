@@ -1,0 +1,240 @@
+"""The ``debtsim`` command line: parse, call the library, report errors.
+
+Only this module knows typer.  Every error debtsim raises on purpose is a
+:class:`~debtsim.errors.DebtsimError`; it is printed one problem per line on
+stderr and the process exits with status 2, with no traceback and nothing
+written.
+"""
+
+from __future__ import annotations
+
+import sys
+import time
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
+from pathlib import Path
+from typing import Annotated
+
+import typer
+
+from debtsim.errors import BookError, DebtsimError
+
+__all__ = ["app", "main"]
+
+app = typer.Typer(
+    name="debtsim",
+    help=(
+        "Credit-portfolio loss with default contagion between obligors that lend to each "
+        "other. Results are model estimates, not investment or regulatory advice."
+    ),
+    add_completion=False,
+    no_args_is_help=True,
+    pretty_exceptions_enable=False,
+)
+
+EXIT_INPUT = 2
+
+
+def fail(error: DebtsimError) -> None:
+    """Print a debtsim error on stderr, one problem per line, and exit with status 2."""
+    lines = [str(p) for p in error.problems] if isinstance(error, BookError) else [str(error)]
+    for line in lines:
+        typer.echo(f"error: {line}" if not isinstance(error, BookError) else line, err=True)
+    raise typer.Exit(EXIT_INPUT)
+
+
+@contextmanager
+def progress_bars(enabled: bool) -> Iterator[Callable[[str], Callable[[int, int], None] | None]]:
+    """Progress bars on stderr, shown once a stage has run for more than a second."""
+    if not enabled:
+        yield lambda stage: None
+        return
+    from rich.console import Console
+    from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
+
+    console = Console(stderr=True)
+    with Progress(
+        TextColumn("{task.description}"),
+        BarColumn(),
+        TextColumn("{task.percentage:>3.0f}%"),
+        TimeRemainingColumn(),
+        console=console,
+        transient=True,
+    ) as bars:
+
+        def factory(stage: str) -> Callable[[int, int], None]:
+            started = time.monotonic()
+            task: list[int] = []
+
+            def hook(done: int, total: int) -> None:
+                if not task:
+                    if time.monotonic() - started < 1.0 and done < total:
+                        return
+                    task.append(bars.add_task(stage, total=max(total, 1)))
+                bars.update(task[0], completed=done, total=max(total, 1))
+
+            return hook
+
+        yield factory
+
+
+def _check_levels(levels: list[float] | None) -> tuple[float, ...]:
+    from debtsim.analysis import levels_from
+
+    for a in levels or []:
+        if not 0.0 < a < 1.0:
+            raise DebtsimError(f"--level: must be between 0 and 1 (exclusive), got {a}")
+    return levels_from(levels)
+
+
+@app.command()
+def run(
+    book: Annotated[Path, typer.Argument(help="Book file (YAML).")],
+    out: Annotated[
+        Path | None, typer.Option("--out", help="Output folder [default: reports/<book stem>/].")
+    ] = None,
+    engine: Annotated[
+        str, typer.Option("--engine", help="auto, exact, circuit or sample.")
+    ] = "auto",
+    samples: Annotated[
+        int | None, typer.Option("--samples", min=1, help="Scenarios for the sample engine.")
+    ] = None,
+    seed: Annotated[int | None, typer.Option("--seed", help="Seed for random draws.")] = None,
+    level: Annotated[
+        list[float] | None,
+        typer.Option("--level", help="Confidence level (repeatable) [default: 0.99 0.999]."),
+    ] = None,
+    shots: Annotated[
+        int | None,
+        typer.Option("--shots", min=1, help="Circuit engine: sample N measurements instead of "
+                     "the exact statevector law."),
+    ] = None,
+    copula: Annotated[
+        bool, typer.Option("--copula/--no-copula", help="Also run the Gaussian copula.")
+    ] = True,
+    quiet: Annotated[bool, typer.Option("--quiet", "-q", help="No progress, no summary.")] = False,
+) -> None:
+    """Compute the loss law of BOOK and write the report folder."""
+    from debtsim.analysis import RunOptions, analyse
+    from debtsim.engines import DEFAULT_SEED, ENGINE_NAMES
+    from debtsim.report import write_run
+    from debtsim.schema import load_book
+
+    try:
+        if engine not in ENGINE_NAMES:
+            raise DebtsimError(
+                f"--engine: must be one of {', '.join(ENGINE_NAMES)}, got {engine!r}"
+            )
+        levels = _check_levels(level)
+        loaded = load_book(book)
+        options = RunOptions(
+            engine=engine,
+            samples=samples,
+            seed=DEFAULT_SEED if seed is None else seed,
+            shots=shots,
+            levels=levels,
+            copula=copula,
+        )
+        out_dir = out if out is not None else Path("reports") / book.stem
+        with progress_bars(not quiet) as progress:
+            analysis = analyse(loaded, options, progress=progress)
+        final = write_run(analysis, out_dir)
+    except DebtsimError as error:
+        fail(error)
+        return
+    if not quiet:
+        _print_run(analysis, final)
+
+
+def _print_run(analysis: object, folder: Path) -> None:
+    from debtsim.analysis import Analysis
+
+    assert isinstance(analysis, Analysis)
+    m = analysis.measures
+    cur = analysis.book.currency
+    lines = [
+        f"{analysis.book.name}: {analysis.model.n_obligors} obligors, "
+        f"{analysis.model.n_links} links, engine {analysis.engine} ({analysis.engine_reason})",
+        f"  expected loss      {m.expected_loss:,.2f} {cur}",
+        f"  loss std           {m.loss_std:,.2f} {cur}",
+    ]
+    for key in m.var:
+        lines.append(
+            f"  VaR {key:<7}        {m.var[key]:,.2f} {cur}   ES {m.expected_shortfall[key]:,.2f}"
+        )
+    if analysis.copula_measures is not None:
+        c = analysis.copula_measures
+        lines.append(f"  copula EL          {c.expected_loss:,.2f} {cur}")
+        for key in c.var:
+            lines.append(f"  copula VaR {key:<7} {c.var[key]:,.2f} {cur}")
+    lines.append(f"report: {folder / 'report.html'}")
+    lines.append("Model estimates only: not investment or regulatory advice.")
+    typer.echo("\n".join(lines))
+
+
+@app.command()
+def check(book: Annotated[Path, typer.Argument(help="Book file (YAML).")]) -> None:
+    """Validate BOOK and print a one-screen overview; writes nothing."""
+    from debtsim.overview import format_overview, overview
+    from debtsim.schema import load_book
+
+    try:
+        loaded = load_book(book)
+        text = format_overview(overview(loaded))
+    except DebtsimError as error:
+        fail(error)
+        return
+    typer.echo(text)
+
+
+@app.command()
+def circuit(
+    book: Annotated[Path, typer.Argument(help="Book file (YAML).")],
+    qasm: Annotated[
+        Path | None, typer.Option("--qasm", help="Write the circuit as OpenQASM 3 to FILE.")
+    ] = None,
+    force: Annotated[
+        bool, typer.Option("--force", help="Overwrite an existing --qasm file.")
+    ] = False,
+) -> None:
+    """Print the size of BOOK's circuit (qubits, depth, two-qubit gates)."""
+    from debtsim.circuit import build_circuit, circuit_size, to_qasm3
+    from debtsim.model import CreditModel
+    from debtsim.schema import load_book
+
+    try:
+        loaded = load_book(book)
+        if qasm is not None and qasm.exists() and not force:
+            raise DebtsimError(f"--qasm: {qasm} exists; pass --force to overwrite it")
+        model = CreditModel.from_book(loaded)
+        qc = build_circuit(model)
+        size = circuit_size(qc)
+        text = to_qasm3(qc) if qasm is not None else None
+    except DebtsimError as error:
+        fail(error)
+        return
+    typer.echo(
+        f"qubits            {size.qubits} ({model.factor_qubits} factor + "
+        f"{model.n_obligors} obligor)\n"
+        f"depth             {size.depth}\n"
+        f"two-qubit gates   {size.two_qubit_gates}\n"
+        f"(after transpiling to u/cx)"
+    )
+    if qasm is not None and text is not None:
+        tmp = qasm.with_name(f".{qasm.name}.tmp")
+        tmp.write_text(text, encoding="utf-8")
+        tmp.replace(qasm)
+        typer.echo(f"OpenQASM 3 written to {qasm}")
+
+
+def main() -> None:
+    """Console-script entry point."""
+    try:
+        app()
+    except KeyboardInterrupt:
+        typer.echo("interrupted; nothing was written", err=True)
+        sys.exit(130)
+
+
+if __name__ == "__main__":
+    main()

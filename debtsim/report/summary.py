@@ -1,0 +1,143 @@
+"""The ``summary.json`` object of a run, and the rows of ``obligors.csv``."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from debtsim.analysis import Analysis
+from debtsim.contagion import contagion_effect, obligor_contagion, rank_links
+from debtsim.report.files import GENERATOR_KEY, generator
+from debtsim.risk import level_key
+
+__all__ = [
+    "CAUTION",
+    "OBLIGOR_COLUMNS",
+    "SUMMARY_LINKS",
+    "obligor_rows",
+    "summary_dict",
+]
+
+#: Caution printed in every report and stored in ``summary.json``.
+CAUTION = (
+    "These figures are estimates from a statistical model of the book as given; they are not "
+    "investment, credit or regulatory advice. Regulatory and economic capital must be set by "
+    "your supervisor's rules and your institution's approved methods."
+)
+
+#: Links listed in ``summary.json`` under ``contagion.most_contagious_links``.
+SUMMARY_LINKS = 10
+
+#: Columns of ``obligors.csv``: the book's fields, the contract's two results, then extras.
+OBLIGOR_COLUMNS = (
+    "id",
+    "name",
+    "sector",
+    "ead",
+    "pd",
+    "lgd",
+    "asset_correlation",
+    "default_probability",
+    "expected_loss",
+    "own_default_probability",
+    "contagion_uplift",
+)
+
+
+def summary_dict(analysis: Analysis) -> dict[str, Any]:
+    """Build the ``summary.json`` object of a run.
+
+    Parameters
+    ----------
+    analysis : Analysis
+        The finished run.
+
+    Returns
+    -------
+    dict
+        The contract keys of ``shared/DESIGN.md`` in its order (``book``,
+        ``currency``, ``engine``, ``obligors``, ``links``, ``seed``,
+        ``samples``, ``total_exposure``, ``measures``, ``copula``) followed by
+        extras: ``generator`` (``"debtsim <version>"``, marks the folder as
+        replaceable), ``levels``, ``engine_reason``, ``engine_settings``,
+        ``diagnostics``, ``contagion`` and ``caution``.  ``copula`` is None
+        when the copula was not computed.  Values are plain Python (no numpy).
+
+    Notes
+    -----
+    ``seed`` is the seed the engine used, None when its law involves no
+    randomness; ``samples`` is None for exact laws.
+
+    """
+    book = analysis.book
+    dist = analysis.distribution
+    copula: dict[str, Any] | None = None
+    if analysis.copula_distribution is not None and analysis.copula_measures is not None:
+        cd = analysis.copula_distribution
+        copula = {
+            "samples": cd.samples,
+            "measures": analysis.copula_measures.to_dict(),
+            "engine": cd.engine,
+            "seed": cd.seed,
+            "engine_settings": dict(cd.settings),
+            "diagnostics": dict(cd.diagnostics),
+        }
+    effect = contagion_effect(analysis.measures, analysis.copula_measures)
+    links = [
+        {
+            "creditor": t.creditor,
+            "debtor": t.debtor,
+            "contagion": t.contagion,
+            "amount": t.amount,
+            "debtor_default_probability": t.debtor_default_probability,
+            "transmitted_loss": t.transmitted_loss,
+        }
+        for t in rank_links(book, dist.default_probability, top=SUMMARY_LINKS)
+    ]
+    return {
+        "book": book.name,
+        "currency": book.currency,
+        "engine": analysis.engine,
+        "obligors": len(book.obligors),
+        "links": len(book.links),
+        "seed": dist.seed,
+        "samples": dist.samples,
+        "total_exposure": book.total_exposure,
+        "measures": analysis.measures.to_dict(),
+        "copula": copula,
+        GENERATOR_KEY: generator(),
+        "levels": [level_key(a) for a in analysis.options.levels],
+        "engine_reason": analysis.engine_reason,
+        "engine_settings": dict(dist.settings),
+        "diagnostics": dict(dist.diagnostics),
+        "notes": list(analysis.notes),
+        "contagion": {
+            **effect,
+            "most_contagious_links": links,
+            "link_indicator": "contagion * debtor final PD * (1 - creditor PD) * creditor EAD "
+            "* creditor LGD (first-order expected loss carried by the link)",
+        },
+        "book_source": book.source,
+        "caution": CAUTION,
+    }
+
+
+def obligor_rows(analysis: Analysis) -> list[list[Any]]:
+    """Rows of ``obligors.csv`` in book order, columns as :data:`OBLIGOR_COLUMNS`."""
+    book = analysis.book
+    oc = obligor_contagion(book, analysis.distribution.default_probability)
+    return [
+        [
+            o.id,
+            o.name,
+            o.sector,
+            float(o.ead),
+            float(o.pd),
+            float(o.lgd),
+            float(o.asset_correlation),
+            float(oc.default_probability[i]),
+            float(oc.expected_loss[i]),
+            float(oc.own_default_probability[i]),
+            float(oc.contagion_uplift[i]),
+        ]
+        for i, o in enumerate(book.obligors)
+    ]

@@ -497,13 +497,20 @@ class _Yaml:
             return _Raw("tagged", None, str(node.tag), line)
         return _Raw("scalar", value, str(node.value), line)
 
-    def mapping(self, node: MappingNode, path: str) -> dict[str, tuple[Node, Node]]:
-        """Key -> (key node, value node), reporting repeated and non-text keys."""
+    def mapping(self, node: MappingNode, path: str) -> dict[str, tuple[Node, Node]] | None:
+        """Key -> (key node, value node), reporting repeated and non-text keys.
+
+        ``<<`` merge keys are resolved as the safe loader does: a key written
+        in the mapping itself overrides a merged one without complaint.  None
+        (after reporting) when a merge is impossible.
+        """
+        explicit = {id(k) for k, _ in node.value if k.tag != "tag:yaml.org,2002:merge"}
         try:
-            self.constructor.flatten_mapping(node)  # resolve ``<<`` merge keys
-        except yaml.YAMLError as exc:
-            line = node.start_mark.line + 1
-            self.sink.add(self.file, line, path, f"cannot merge mappings: {exc}")
+            self.constructor.flatten_mapping(node)
+        except yaml.MarkedYAMLError as exc:
+            mark = exc.problem_mark or node.start_mark
+            self.sink.add(self.file, mark.line + 1, path, f"cannot merge: {exc.problem}")
+            return None
         out: dict[str, tuple[Node, Node]] = {}
         for key_node, value_node in node.value:
             line = key_node.start_mark.line + 1
@@ -511,7 +518,7 @@ class _Yaml:
                 self.sink.add(self.file, line, path, "field names must be plain text")
                 continue
             key = str(key_node.value)
-            if key in out:
+            if key in out and id(out[key][0]) in explicit and id(key_node) in explicit:
                 first = out[key][0].start_mark.line + 1
                 self.sink.add(
                     self.file, line, _join(path, key), f"given twice (first at line {first})"
@@ -531,8 +538,11 @@ class _Yaml:
                 shown = _shown(self.raw(item))
                 self.sink.add(self.file, line, path, f"must be a mapping of fields, got {shown}")
                 continue
+            items = self.mapping(item, path)
+            if items is None:
+                continue
             fields: dict[str, _Raw] = {}
-            for key, (key_node, value_node) in self.mapping(item, path).items():
+            for key, (key_node, value_node) in items.items():
                 if key not in allowed:
                     self.sink.add(
                         self.file,
@@ -724,7 +734,7 @@ def _factor_qubits(walker: _Yaml, node: Node, sink: _Sink) -> int:
         return DEFAULT_FACTOR_QUBITS
     assert isinstance(node, MappingNode)
     result = DEFAULT_FACTOR_QUBITS
-    for key, (key_node, value_node) in walker.mapping(node, "model").items():
+    for key, (key_node, value_node) in (walker.mapping(node, "model") or {}).items():
         if key not in MODEL_FIELDS:
             sink.add(
                 walker.file,
@@ -777,6 +787,8 @@ def _load(path: str, sink: _Sink) -> Book | None:
         )
         return None
     top = walker.mapping(root, "")
+    if top is None:
+        return None
     for key, (key_node, _value) in top.items():
         if key not in BOOK_FIELDS:
             sink.add(

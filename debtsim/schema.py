@@ -203,6 +203,8 @@ class _Sink:
 
     def add(self, file: str, line: int | None, field: str, message: str) -> None:
         self._rank.setdefault(file, len(self._rank))
+        # one problem, one line: a key may hold a line break
+        field = field.replace("\r", "\\r").replace("\n", "\\n")
         self.problems.append(Problem(file, line, field, message))
 
     def sorted(self) -> list[Problem]:

@@ -450,6 +450,14 @@ def test_top_level_rules(in_tmp: Path, section: str, expected: str) -> None:
     assert problems("b.yaml") == [expected]
 
 
+def test_odd_key_stays_on_one_line(in_tmp: Path) -> None:
+    """A key holding a line break is shown escaped, so each problem is one line."""
+    write(in_tmp, "b.yaml", one_obligor_book() + '"a\\nb": 1\n')
+    assert problems("b.yaml") == [
+        "b.yaml:8: a\\nb: unknown field (allowed: book, currency, obligors, links, model)"
+    ]
+
+
 def test_model_null_and_links_null_take_defaults(in_tmp: Path) -> None:
     """An empty model or links section means the defaults."""
     write(in_tmp, "b.yaml", one_obligor_book() + "links:\nmodel:\ncurrency:\n")

@@ -216,9 +216,10 @@ class CreditModel:
                 indegree[b] -= 1
                 if indegree[b] == 0:
                     heapq.heappush(ready, b)
-        members = [np.flatnonzero(labels == c) for c in range(n_comp)]
+        by_label = np.argsort(labels, kind="stable")
+        starts = np.searchsorted(labels[by_label], np.arange(n_comp + 1))
         del n
-        return tuple(members[c] for c in order)
+        return tuple(np.sort(by_label[starts[c] : starts[c + 1]]) for c in order)
 
     @cached_property
     def cycles(self) -> tuple[IntArray, ...]:

@@ -1,0 +1,215 @@
+"""The ``circuit`` engine: the model's circuit on Aer's statevector simulator.
+
+Without shots the law is exact for the discretised factor: the simulator's
+probabilities of the obligor register (factor register summed out) give the
+probability of every default pattern, and each pattern's loss is the sum of
+``EAD * LGD`` over its defaulted obligors.  With shots, the obligor register is
+measured that many times with the given seed.
+"""
+
+from __future__ import annotations
+
+import secrets
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from numpy.typing import NDArray
+from qiskit_aer import AerSimulator
+
+from debtsim.circuit import build_circuit, circuit_problem, factor_grid_for, factor_qubits_of
+from debtsim.distribution import LossDistribution
+from debtsim.engines.base import Engine, ProgressHook
+from debtsim.errors import EngineRefusedError
+from debtsim.factor import FactorGrid
+from debtsim.model import CreditModel
+
+__all__ = ["DEFAULT_MAX_QUBITS", "CircuitEngine", "statevector_bytes"]
+
+FloatArray = NDArray[np.float64]
+
+#: Largest circuit (factor plus obligor qubits) the engine accepts.  Measured on
+#: 2 cores (benchmarks/bench_circuit.py): 28 qubits (23 obligors, 5 factor
+#: qubits) in about 50 s with a 4 GiB statevector; 29 qubits took 150 s and 8 GiB.
+DEFAULT_MAX_QUBITS = 28
+
+
+def statevector_bytes(qubits: int) -> int:
+    """Memory of a double-precision statevector: 16 bytes per amplitude."""
+    return 16 * 2**qubits
+
+
+def _bytes_text(n: int) -> str:
+    """``n`` bytes in binary units, e.g. ``2.0 GiB``."""
+    value = float(n)
+    for unit in ("B", "KiB", "MiB", "GiB", "TiB", "PiB", "EiB"):
+        if value < 1024.0 or unit == "EiB":
+            return f"{value:.1f} {unit}" if unit != "B" else f"{int(value)} B"
+        value /= 1024.0
+    raise AssertionError("unreachable")
+
+
+def _pattern_losses(loss_each: FloatArray) -> FloatArray:
+    """Loss of every default pattern; pattern bit ``i`` is obligor ``i``."""
+    out = np.zeros(1)
+    for x in loss_each.tolist():
+        out = np.concatenate((out, out + x))
+    return out
+
+
+#: Patterns aggregated at a time when turning the statevector law into a loss law.
+_CHUNK_BITS = 22
+
+
+def _loss_atoms(probs: FloatArray, loss_each: FloatArray) -> tuple[FloatArray, FloatArray]:
+    """Loss atoms of a law over default patterns, equal losses summed.
+
+    Patterns are taken ``2**_CHUNK_BITS`` at a time (low bits vary inside a
+    chunk); inside a chunk equal losses are merged by hashing, which is far
+    cheaper than sorting when many patterns share a loss.
+    """
+    n = loss_each.size
+    low_bits = min(n, _CHUNK_BITS)
+    low = _pattern_losses(loss_each[:low_bits])
+    high = _pattern_losses(loss_each[low_bits:])
+    blocks = probs.reshape(high.size, low.size)
+    losses: list[FloatArray] = []
+    weights: list[FloatArray] = []
+    for j in range(high.size):
+        p = blocks[j]
+        keep = p > 0.0
+        codes, uniq = pd.factorize(low[keep] + high[j])
+        losses.append(np.asarray(uniq, dtype=float))
+        weights.append(np.bincount(codes, weights=p[keep], minlength=len(uniq)))
+    return np.concatenate(losses), np.concatenate(weights)
+
+
+def _bit_marginals(probs: FloatArray, n: int) -> FloatArray:
+    """``P(bit i = 1)`` of a law over ``2**n`` little-endian patterns."""
+    return np.array([probs.reshape(-1, 2, 2**i)[:, 1, :].sum() for i in range(n)])
+
+
+class CircuitEngine(Engine):
+    """Run the model's circuit on Aer's statevector simulator (CPU).
+
+    Parameters
+    ----------
+    shots : int or None
+        None (default) reads the exact law from the statevector; a positive
+        number samples that many measurements instead.
+    seed : int or None
+        Seed of the measurement sampling; unused when exact.  Without a seed a
+        random one is drawn and recorded.
+    max_qubits : int
+        Largest number of qubits (obligors plus factor qubits) accepted.
+    factor_grid : FactorGrid, optional
+        Factor nodes (``2**k`` of them); Gauss–Hermite with
+        ``2**model.factor_qubits`` nodes by default.
+
+    """
+
+    name = "circuit"
+
+    def __init__(
+        self,
+        *,
+        shots: int | None = None,
+        seed: int | None = None,
+        max_qubits: int = DEFAULT_MAX_QUBITS,
+        factor_grid: FactorGrid | None = None,
+    ) -> None:
+        if shots is not None and shots < 1:
+            raise ValueError(f"shots must be a positive integer or None, got {shots}")
+        if max_qubits < 1:
+            raise ValueError(f"max_qubits must be positive, got {max_qubits}")
+        self.shots = shots
+        self.seed = seed
+        self.max_qubits = max_qubits
+        self.factor_grid = factor_grid
+
+    def refusal(self, model: CreditModel) -> str | None:
+        """Why the circuit engine cannot run ``model``, or None when it can."""
+        grid = factor_grid_for(model, self.factor_grid)
+        k = factor_qubits_of(grid)
+        qubits = model.n_obligors + k
+        if qubits > self.max_qubits:
+            return (
+                f"the circuit needs {qubits} qubits ({model.n_obligors} obligors + {k} factor "
+                f"qubit{'s' if k != 1 else ''}); its statevector would take "
+                f"{_bytes_text(statevector_bytes(qubits))} "
+                f"and the circuit engine accepts at most {self.max_qubits} qubits "
+                f"({_bytes_text(statevector_bytes(self.max_qubits))}); use the 'sample' or "
+                f"'exact' engine"
+            )
+        problem = circuit_problem(model, grid)
+        if problem is not None:
+            return f"{problem}; use the 'sample' or 'exact' engine"
+        return None
+
+    def run(self, model: CreditModel, *, progress: ProgressHook | None = None) -> LossDistribution:
+        """Compute the loss law of ``model`` from the circuit.
+
+        Raises
+        ------
+        EngineRefusedError
+            When :meth:`refusal` gives a reason.
+
+        """
+        reason = self.refusal(model)
+        if reason is not None:
+            raise EngineRefusedError(f"circuit engine: {reason}")
+        steps = 3
+        if progress is not None:
+            progress(0, steps)
+        grid = factor_grid_for(model, self.factor_grid)
+        k = factor_qubits_of(grid)
+        n = model.n_obligors
+        measure = self.shots is not None
+        qc = build_circuit(model, grid, measure=measure)
+        if not measure:
+            obligor = next(r for r in qc.qregs if r.name == "obligor")
+            qc.save_probabilities(obligor, label="obligors")
+        if progress is not None:
+            progress(1, steps)
+        settings: dict[str, Any] = {
+            "factor_nodes": len(grid),
+            "factor_method": grid.method,
+            "qubits": n + k,
+            "shots": self.shots,
+        }
+        simulator = AerSimulator(method="statevector", precision="double")
+        loss_each = np.asarray(model.loss_given_default, dtype=float)
+        if not measure:
+            result = simulator.run(qc, shots=1).result()
+            probs = np.asarray(result.data(0)["obligors"], dtype=float)
+            if progress is not None:
+                progress(2, steps)
+            mass = float(probs.sum())
+            dp = _bit_marginals(probs, n) / mass
+            losses, weights = _loss_atoms(probs, loss_each)
+            dist = LossDistribution.from_atoms(
+                losses, weights, engine=self.name, default_probability=dp,
+                samples=None, seed=None, settings=settings,
+                diagnostics={"probability_mass_error": abs(1.0 - mass)},
+            )
+        else:
+            seed = self.seed if self.seed is not None else secrets.randbits(31)
+            result = simulator.run(qc, shots=self.shots, seed_simulator=seed).result()
+            counts = result.data(0)["counts"]
+            if progress is not None:
+                progress(2, steps)
+            patterns = np.array([int(key, 16) for key in counts], dtype=np.int64)
+            weights = np.array(list(counts.values()), dtype=float)
+            bits = ((patterns[:, None] >> np.arange(n, dtype=np.int64)[None, :]) & 1).astype(float)
+            losses = bits @ loss_each
+            total = float(weights.sum())
+            mean = float(weights @ losses) / total
+            var = float(weights @ (losses - mean) ** 2) / total
+            dist = LossDistribution.from_samples(
+                losses, weights, engine=self.name, default_probability=weights @ bits / total,
+                samples=self.shots, seed=seed, settings=settings,
+                diagnostics={"expected_loss_standard_error": float(np.sqrt(var / total))},
+            )
+        if progress is not None:
+            progress(steps, steps)
+        return dist

@@ -7,13 +7,19 @@ import math
 import numpy as np
 import pytest
 from scipy import integrate
-from scipy.special import comb
-from scipy.stats import norm
+from scipy.special import comb, log_ndtr
+from scipy.stats import binom, norm
 
 from debtsim.book import Book, Link, Obligor
 from debtsim.distribution import LossDistribution
 from debtsim.engines import EngineSettings, make_engine
-from debtsim.engines._cascade_sampler import BLOCK, exact_log_normaliser, thresholds
+from debtsim.engines._cascade_sampler import (
+    _CAP,
+    _KAPPA,
+    BLOCK,
+    exact_log_normaliser,
+    thresholds,
+)
 from debtsim.engines.sample import SampleEngine, plan_importance
 from debtsim.factor import gauss_hermite
 from debtsim.model import CreditModel
@@ -337,3 +343,56 @@ def test_diagnostics_and_progress():
     assert dist.settings["importance"] is True
     assert dist.settings["factor_shift"] < 0
     assert dist.probabilities.sum() == pytest.approx(1.0)
+
+
+@pytest.mark.slow
+def test_large_homogeneous_book_tail_matches_binomial_mixture():
+    """On 1,000 loans the IS tail probabilities and VaR agree with the binomial mixture."""
+    n, pd, rho = 1000, 0.01, 0.2
+    c = norm.ppf(pd)
+
+    def tail(k: int) -> float:
+        # finite homogeneous book: P(K > k) = integral of the binomial tail over the factor
+        def f(z: float) -> float:
+            p = norm.cdf((c - math.sqrt(rho) * z) / math.sqrt(1 - rho))
+            return float(binom.sf(k, n, p) * norm.pdf(z))
+
+        return integrate.quad(f, -12, 12, limit=400, epsabs=1e-13, epsrel=1e-10)[0]
+
+    model = make_model([1.0] * n, [1.0] * n, [pd] * n, [rho] * n)
+    engine = SampleEngine(samples=200_000, seed=77)
+    scen, _ = engine.simulate(model)
+    dist = engine.run(model)
+    for a in LEVELS:
+        v = value_at_risk(dist, a)
+        for k in (int(v) - 5, int(v), int(v) + 5):
+            est, se = tail_estimate(scen.losses, scen.weights, float(k))
+            assert abs(est - tail(k)) < 4 * se
+        # the reference quantile lies within one loan of the sampled one
+        k_ref = int(v) - 3
+        while tail(k_ref) > 1 - a:
+            k_ref += 1
+        assert abs(v - k_ref) <= 1
+
+
+def test_dense_filter_bound_never_drops_a_default():
+    """The filter's bound is below -log Phi(-x) for all x >= 0 (grid plus monotone gap)."""
+    x = np.linspace(0.0, 12.0, 1_200_001)
+    gap = -log_ndtr(-x) - x**2 / 2  # increasing in x (Mills ratio), so beyond 12 it stays >= cap
+    assert np.all(np.diff(gap) > 0)
+    assert np.all(gap - np.minimum(_KAPPA * x, _CAP) > 0.01)
+
+
+def test_exact_log_normaliser_path_gives_the_same_weights(monkeypatch):
+    """Forcing the exact per-scenario psi changes the weights by less than 1e-9 relative."""
+    import debtsim.engines.sample as sample_module
+
+    model = make_model(*TINY_BOOKS["star"][:4], TINY_BOOKS["star"][4])
+    engine = SampleEngine(samples=6_000, seed=2)
+    interpolated, plan = engine.simulate(model)
+    assert plan is not None and all(t.tilt.psi is not None for t in plan.tilts)
+    monkeypatch.setattr(sample_module, "LOG_WEIGHT_TOLERANCE", -1.0)
+    exact, plan_exact = engine.simulate(model)
+    assert plan_exact is not None and all(t.tilt.psi is None for t in plan_exact.tilts)
+    np.testing.assert_array_equal(interpolated.losses, exact.losses)
+    np.testing.assert_allclose(interpolated.weights, exact.weights, rtol=1e-9)

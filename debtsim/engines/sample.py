@@ -6,15 +6,18 @@ final defaults reached along live links (see
 empirical law of the scenario losses.
 
 Importance sampling (on by default when the highest confidence level is at
-least 0.99) follows Glasserman & Li (2005), inside a defensive mixture:
+least 0.99) follows Glasserman & Li (2005), one tilt per confidence level,
+inside a defensive mixture:
 
-1. **Target loss** ``x``: the highest level's quantile of the own-default
-   loss under the conditional normal approximation (given ``z``, loss
-   normal with the exact conditional mean and variance), integrated over
-   the factor.  For a large fine-grained book this is Vasicek's
+1. **Target loss** ``x``: the level's quantile of the own-default loss
+   under the conditional normal approximation (given ``z``, loss normal
+   with the exact conditional mean and variance), integrated over the
+   factor.  For a large fine-grained book this is Vasicek's
    ``E[L | z = Phi^-1(1 - a)]``; unlike that rule it stays sensible for
    small or weakly correlated books.  ``x`` is kept between half the
-   smallest and 90% of the largest possible own loss.
+   smallest and 90% of the largest possible own loss.  Contagion is left
+   out of the target: it only adds loss, so the tilted scenarios still
+   reach the tail of the final loss.
 2. **Twist** ``theta(z) >= 0`` solving ``psi'(theta, z) = x``, where
    ``psi(theta, z) = sum_i log(1 - p_i(z) + p_i(z) e^{theta l_i})`` is the
    conditional cumulant generating function of the own-default loss;
@@ -23,17 +26,19 @@ least 0.99) follows Glasserman & Li (2005), inside a defensive mixture:
    mu + 5]`` (``z*``: where the conditional mean equals ``x``) and 0
    outside; any ``theta(z)`` leaves the estimator unbiased.
 3. **Factor shift** ``mu``: Glasserman & Li's choice, the maximiser of
-   ``psi(theta(z), z) - theta(z) x - z^2 / 2`` (the exponent of the
-   zero-variance factor density), searched on ``[z*, 0]``.
-4. **Mixture**: a share :data:`DEFAULT_MIXTURE` of the scenarios comes from
-   the shifted-and-twisted model and the rest from the model itself
-   (Hesterberg's defensive mixture).  The weight, the likelihood ratio of the
-   model to the mixture, is then at most ``1 / (1 - mixture)``, so the body
-   of the law (EL, the lower levels, the self-normalised law built from the
-   weights) stays as accurate as plain Monte Carlo up to that factor, while
-   the tail gets most of the scenarios.  Pure Glasserman–Li weights
-   ``exp(-mu z + mu^2/2)`` would have variance ``e^{mu^2} - 1`` (about 8,000
-   at ``mu = -3``) and make the body of the law useless.
+   ``psi(theta(z), z) - theta(z) x - z^2 / 2`` (the exponent of their
+   bound on the zero-variance factor density), searched on ``[z*, 0]``.
+4. **Mixture**: a share :data:`DEFAULT_PLAIN_SHARE` of the scenarios comes
+   from the model itself and the rest, split evenly, from the tilts
+   (Hesterberg's defensive mixture; the weight is the balance-heuristic
+   likelihood ratio of the model to the whole mixture).  Weights are then
+   at most ``1 / plain_share``, so the body of the law (EL, the
+   self-normalised law built from the weights) stays within a small factor
+   of plain Monte Carlo, while the tails get most of the scenarios.  Pure
+   Glasserman–Li weights ``exp(-mu z + mu^2/2)`` have variance
+   ``e^{mu^2} - 1`` (about 8,000 at ``mu = -3``) and would make the body of
+   the law useless.  One tilt per level keeps each level well sampled: a
+   tilt aimed at 0.999 alone twists the 0.99 region past its quantile.
 
 Links are sampled unchanged, so they cancel from the likelihood ratio.
 ``psi(theta(z), z)`` is needed for every scenario's weight; it is a smooth
@@ -128,7 +133,7 @@ class TiltPlan:
         (``-inf`` when it never does).
     interpolation_error : float
         Largest error of the interpolated ``psi(theta(z), z)`` found at check
-        points (0 when there is no twist); NaN when the exact sum is used.
+        points; 0 when there is no twist or the exact sum is used.
 
     """
 
@@ -310,7 +315,6 @@ def plan_tilt(model: CreditModel, level: float) -> TiltPlan | None:
 
         check = np.linspace(lo_w, hi_w, 103)[1:-1]
         exact = psi_at(check)
-        error = math.nan
         for degree in (64, 128, 256, 512):
             candidate = Chebyshev.interpolate(psi_at, degree, domain=domain)
             err = float(np.max(np.abs(candidate(check) - exact)))
@@ -426,6 +430,14 @@ def _batch_standard_errors(
     )
 
 
+def _by_level(levels: Sequence[float], values: FloatArray) -> dict[str, float | None]:
+    """``{level_key: value}``, None where no estimate exists (too few batches)."""
+    return {
+        level_key(a): (float(v) if math.isfinite(v) else None)
+        for a, v in zip(levels, values, strict=True)
+    }
+
+
 # ----------------------------------------------------------------------- engine
 class SampleEngine(Engine):
     """Monte Carlo sampler of the cascade model with tail importance sampling.
@@ -439,7 +451,7 @@ class SampleEngine(Engine):
         whatever ``chunk`` and ``workers``; a Generator supplies fresh
         entropy on each run.
     levels : tuple of float
-        Confidence levels reported; importance sampling aims at the highest.
+        Confidence levels reported; importance sampling aims a tilt at each.
     importance : bool or None
         Importance sampling on or off; None turns it on when the highest
         level is at least 0.99.
@@ -551,12 +563,14 @@ class SampleEngine(Engine):
         Returns
         -------
         LossDistribution
-            The weighted empirical law, with ``settings`` (importance,
-            factor_shift, mixture, target_loss, ...) and ``diagnostics``
-            (``expected_loss_standard_error``, ``var_standard_error`` and
-            ``expected_shortfall_standard_error`` per level,
-            ``tail_probability`` and its standard error per level,
-            ``effective_sample_size``, ``batches``).
+            The weighted empirical law, with ``settings`` (``importance``,
+            ``factor_shift`` of the highest level's tilt, ``plain_share``,
+            ``tilts``: level, share, shift, target loss, window of each) and
+            ``diagnostics`` (``expected_loss_standard_error``;
+            ``var_standard_error``, ``expected_shortfall_standard_error``,
+            ``tail_probability`` = ``P(L > VaR)`` and its standard error, each
+            keyed by level; ``default_probability_standard_error`` per
+            obligor; ``effective_sample_size``; ``batches``).
 
         """
         scen, plan, seed_value = self._draw(model, progress)
@@ -595,6 +609,7 @@ class SampleEngine(Engine):
                     "factor_shift": t.tilt.shift,
                     "target_loss": t.target_loss,
                     "twist_window": list(t.tilt.window),
+                    "log_normaliser": "exact" if t.tilt.psi is None else "interpolated",
                 }
                 for t, share in zip(plan.tilts, plan.proposal.shares, strict=True)
             ]
@@ -618,11 +633,8 @@ class SampleEngine(Engine):
             tail_se[level_key(a)] = float(np.sqrt(np.sum(nw**2 * (ind - pr) ** 2)))
         diagnostics: dict[str, Any] = {
             "expected_loss_standard_error": el_se,
-            "var_standard_error": {level_key(a): float(s) for a, s in zip(self.levels, var_se,
-                                                                          strict=True)},
-            "expected_shortfall_standard_error": {
-                level_key(a): float(s) for a, s in zip(self.levels, es_se, strict=True)
-            },
+            "var_standard_error": _by_level(self.levels, var_se),
+            "expected_shortfall_standard_error": _by_level(self.levels, es_se),
             "tail_probability": tail_p,
             "tail_probability_standard_error": tail_se,
             "default_probability_standard_error": dp_se.tolist(),

@@ -92,12 +92,24 @@ class Analysis:
 
 
 def _copula_law(
-    model: CreditModel, options: RunOptions, progress: ProgressHook | None
+    model: CreditModel, engine: str, options: RunOptions, progress: ProgressHook | None
 ) -> LossDistribution:
-    """Loss law of the book read without links; exact whenever possible."""
+    """Loss law of the book read without links, computed like the main law.
+
+    The copula uses the same discretisation as the engine that ran, so that
+    the difference between the two laws is contagion and nothing else: the
+    circuit's Gauss–Hermite nodes for ``circuit`` (computed exactly on those
+    nodes), the same sampler and seed for ``sample`` (common random numbers),
+    and the exact engine's own grid otherwise.
+    """
     plain = model.without_links()
-    name = "auto" if options.engine != "sample" else "sample"
-    choice = choose_engine(name, plain, options.engine_settings)
+    if engine == "circuit":
+        from debtsim.engines.exact import ExactEngine
+        from debtsim.factor import gauss_hermite
+
+        exact_on_nodes = ExactEngine(factor_grid=gauss_hermite(2**model.factor_qubits))
+        return exact_on_nodes.run(plain, progress=progress)
+    choice = choose_engine(engine, plain, options.engine_settings)
     return choice.engine.run(plain, progress=progress)
 
 
@@ -134,7 +146,9 @@ def analyse(
     result_measures = measures(dist, options.levels)
     copula_dist = copula_measures = None
     if options.copula:
-        copula_dist = _copula_law(model, options, progress("copula") if progress else None)
+        copula_dist = _copula_law(
+            model, choice.engine.name, options, progress("copula") if progress else None
+        )
         copula_measures = measures(copula_dist, options.levels)
     return Analysis(
         book=book,

@@ -30,11 +30,13 @@ one probability row per factor node.
 
 from __future__ import annotations
 
+import heapq
 from dataclasses import dataclass
 
 import numpy as np
 import scipy.fft as sfft
 from numpy.typing import NDArray
+from scipy.signal import fftconvolve
 
 __all__ = [
     "AtomConvolution",
@@ -43,6 +45,7 @@ __all__ = [
     "Window",
     "bernstein_halfwidth",
     "grid_law",
+    "product_law",
     "place_window",
 ]
 
@@ -199,13 +202,49 @@ def _log_coefficients(
     return coefficients, const, shift, idx[far], truncation
 
 
+def product_law(laws: list[tuple[int, FloatArray]]) -> tuple[int, FloatArray]:
+    """Law of a sum of independent grid variables, for a batch of nodes.
+
+    Parameters
+    ----------
+    laws : list of (offset, probabilities)
+        Each variable takes the value ``offset + t`` with probability
+        ``probabilities[:, t]`` (one row per node).
+
+    Returns
+    -------
+    offset : int
+    probabilities : ndarray, shape (nodes, length)
+        Law of the sum: the two shortest factors are convolved first (FFT for
+        long ones), so the cost is about ``total length * log^2``.
+
+    """
+    heap = [(law.shape[1], i, off, law) for i, (off, law) in enumerate(laws)]
+    heapq.heapify(heap)
+    counter = len(heap)
+    while len(heap) > 1:
+        n1, _, off1, a = heapq.heappop(heap)
+        n2, _, off2, b = heapq.heappop(heap)
+        if min(n1, n2) <= 16:
+            short, long_ = (a, b) if n1 <= n2 else (b, a)
+            out = np.zeros((a.shape[0], n1 + n2 - 1))
+            for t in range(short.shape[1]):
+                out[:, t : t + long_.shape[1]] += short[:, t : t + 1] * long_
+        else:
+            out = fftconvolve(a, b, axes=1)
+        heapq.heappush(heap, (out.shape[1], counter, off1 + off2, out))
+        counter += 1
+    _, _, offset, law = heap[0]
+    return offset, law
+
+
 def grid_law(
     k: IntArray,
     p: FloatArray,
     window: Window,
     *,
     count: FloatArray | None = None,
-    groups: list[tuple[IntArray, FloatArray]] | None = None,
+    extra: tuple[int, FloatArray] | None = None,
     tolerance: float = SERIES_TOLERANCE,
 ) -> tuple[FloatArray, float]:
     """Conditional loss law on one window of the grid.
@@ -221,9 +260,9 @@ def grid_law(
         (the rest folds in modulo ``window.width``).
     count : ndarray, shape (n,), optional
         Number of identical obligors in each class (default 1).
-    groups : list of (positions, probabilities), optional
-        Exact loss laws of link groups: grid losses (int) and their
-        probabilities, independent of each other and of the obligors.
+    extra : (offset, probabilities), optional
+        Law of an independent addend (the link groups): value ``offset + t``
+        with probability ``probabilities[t]``.
     tolerance : float
         Bound on the series truncation error of the log-PGF.
 
@@ -250,17 +289,12 @@ def grid_law(
         factor = 1.0 - p[i] + p[i] * np.exp(-1j * angle)
         with np.errstate(divide="ignore"):
             spectrum *= factor if count[i] == 1 else np.exp(count[i] * np.log(factor))
-    for positions, probs in groups or ():
-        factor = np.zeros(width // 2 + 1, dtype=complex)
-        for pos_s, prob_s in zip(positions.tolist(), probs.tolist(), strict=True):
-            if prob_s == 0.0:
-                continue
-            if pos_s == 0:
-                factor += prob_s
-            else:
-                angle = (2.0 * np.pi / width) * np.mod(m * pos_s, width)
-                factor += prob_s * np.exp(-1j * angle)
-        spectrum *= factor
+    if extra is not None:
+        offset, probs = extra
+        folded = np.bincount(
+            np.mod(offset + np.arange(probs.size), width), weights=probs, minlength=width
+        )
+        spectrum *= sfft.rfft(folded)
     law = sfft.irfft(spectrum, width)
     law = np.roll(law, -((window.start - shift) % width))
     return law, truncation

@@ -49,6 +49,7 @@ from debtsim.engines._loss_grid import (
     bernstein_halfwidth,
     grid_law,
     place_window,
+    product_law,
 )
 from debtsim.engines.base import Engine, ProgressHook
 from debtsim.errors import EngineRefusedError
@@ -312,8 +313,9 @@ def _group_state_law(group: _Group, own: FloatArray) -> FloatArray:
     ----------
     group : _Group
         The group, its parts in chain order.
-    own : ndarray, shape (nodes, n)
-        Own-default probabilities of every obligor given each node.
+    own : ndarray, shape (nodes, size)
+        Own-default probabilities of the group's members (in
+        ``group.members`` order) given each node.
 
     Returns
     -------
@@ -330,7 +332,7 @@ def _group_state_law(group: _Group, own: FloatArray) -> FloatArray:
         survive = np.ones((states.size, g))
         for bit, pos, q in part.external:
             survive[:, pos] *= np.where((states >> bit) & 1, 1.0 - q, 1.0)
-        own_part = own[:, part.members]
+        own_part = own[:, done : done + g]
         seed = 1.0 - (1.0 - own_part)[:, None, :] * survive[None, :, :]
         if g == 1 and not part.internal:
             part_law = np.concatenate([1.0 - seed, seed], axis=2)
@@ -473,7 +475,7 @@ def _run_atoms(
             np.stack([1.0 - own[:, i], own[:, i]], axis=1) for i in lossy_single.tolist()
         ]
         for g in groups:
-            law = _group_state_law(g, own)
+            law = _group_state_law(g, own[:, g.members])
             item_laws.append(law)
             default_probability[g.members] += w @ (law @ _state_bits(g.members.size))
         probs = plan.atoms.apply(item_laws) if item_laws else np.ones((z.size, 1))
@@ -553,12 +555,32 @@ def _run_grid(
         pr_probability += w @ p_pr
         glaws = []
         for g, bits, (order, starts) in zip(groups, group_bits, group_sort, strict=True):
-            own = np.zeros((z.size, model.n_obligors))
-            own[:, g.members] = p_pr[:, pr_of[g.members]]
-            law = _group_state_law(g, own)
-            marg = law @ bits
-            default_probability[g.members] += w @ marg
+            law = _group_state_law(g, p_pr[:, pr_of[g.members]])
+            marg = np.einsum("js,sm->jm", law, bits.astype(float))
+            default_probability[g.members] += np.einsum("j,jm->m", w, marg)
             glaws.append((np.add.reduceat(law[:, order], starts, axis=1), marg))
+        g_bound = max((float(pos[-1] - pos[0]) for pos in group_pos), default=0.0)
+        if groups:
+            dense = []
+            for (merged, _), pos in zip(glaws, group_pos, strict=True):
+                block = np.zeros((z.size, int(pos[-1] - pos[0]) + 1))
+                block[:, pos - pos[0]] = merged
+                dense.append((int(pos[0]), block))
+            group_offset, group_law_batch = product_law(dense)
+            g_mean = np.zeros(z.size)
+            g_var = np.zeros(z.size)
+            g_low = np.zeros(z.size, dtype=np.int64)
+            g_high = np.zeros(z.size, dtype=np.int64)
+            g_el = np.zeros(z.size)
+            for (merged, marg), pos, g in zip(glaws, group_pos, groups, strict=True):
+                fpos = pos.astype(float)
+                gm = np.einsum("ja,a->j", merged, fpos)
+                g_mean += gm
+                g_var += np.einsum("ja,a->j", merged, fpos * fpos) - gm * gm
+                live = merged > 0
+                g_low += pos[np.argmax(live, axis=1)]
+                g_high += pos[pos.size - 1 - np.argmax(live[:, ::-1], axis=1)]
+                g_el += np.einsum("jm,m->j", marg, loss[g.members])
         for j in range(z.size):
             p = p_pr[j, cls_pr]
             mean = float(np.sum(p * cls_kc))
@@ -568,24 +590,20 @@ def _run_grid(
             lowest = int(np.sum(cls_kc[p >= 1]))
             highest = int(np.sum(cls_kc[p > 0]))
             el = float(np.sum(p_pr[j] * pr_loss))
-            parts = []
-            for (gl, marg), pos, g in zip(glaws, group_pos, groups, strict=True):
-                probs = gl[j]
-                gm = float(np.sum(probs * pos))
-                mean += gm
-                var += float(np.sum(probs * pos.astype(float) ** 2)) - gm * gm
-                live = np.flatnonzero(probs > 0)
-                lowest += int(pos[live[0]])
-                highest += int(pos[live[-1]])
-                bound = max(bound, float(pos[-1] - pos[0]))
-                el += float(np.sum(marg[j] * loss[g.members]))
-                parts.append((pos, probs))
+            if groups:
+                mean += float(g_mean[j])
+                var += float(g_var[j])
+                lowest += int(g_low[j])
+                highest += int(g_high[j])
+                bound = max(bound, g_bound)
+                el += float(g_el[j])
             exp_k[start + j] = mean
             exp_l[start + j] = el
             half = bernstein_halfwidth(var, bound)
             window = place_window(mean, half, lowest, highest, top)
             widest = max(widest, window.width)
-            law, trunc = grid_law(cls_k, p, window, count=cls_count, groups=parts)
+            extra = (group_offset, group_law_batch[j]) if groups else None
+            law, trunc = grid_law(cls_k, p, window, count=cls_count, extra=extra)
             truncation = max(truncation, trunc)
             mixture[window.start : window.start + window.width] += w[j] * law
         if progress is not None:
@@ -597,11 +615,11 @@ def _run_grid(
     if idx.size == 0 or idx[0] != 0:
         idx = np.r_[0, idx]
     probs = mixture[idx]
-    target = float(default_probability @ loss)
+    target = float(np.sum(default_probability * loss))
     if plan.mode == "exact-grid":
         unit = plan.unit
     else:
-        grid_mean = float(idx @ probs)
+        grid_mean = float(np.sum(idx * probs))
         unit = target / grid_mean if grid_mean > 0 else plan.unit
     losses = unit * idx.astype(float)
     diagnostics = _grid_diagnostics(

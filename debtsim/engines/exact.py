@@ -487,7 +487,6 @@ def _run_atoms(
     probs = np.clip(total[order], 0.0, None)
     probs = probs / probs.sum()
     keep = probs > 0
-    keep[0] = True
     diagnostics: dict[str, Any] = {
         "discretisation_error": 0.0,
         "grid_exact": True,
@@ -612,8 +611,6 @@ def _run_grid(
     np.clip(mixture, 0.0, None, out=mixture)
     mixture /= mixture.sum()
     idx = np.flatnonzero(mixture > 0)
-    if idx.size == 0 or idx[0] != 0:
-        idx = np.r_[0, idx]
     probs = mixture[idx]
     target = float(np.sum(default_probability * loss))
     if plan.mode == "exact-grid":

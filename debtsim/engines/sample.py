@@ -565,7 +565,7 @@ class SampleEngine(Engine):
         LossDistribution
             The weighted empirical law, with ``settings`` (``importance``,
             ``factor_shift`` of the highest level's tilt, ``plain_share``,
-            ``tilts``: level, share, shift, target loss, window of each) and
+            ``tilts``: share, shift, target loss, window per level) and
             ``diagnostics`` (``expected_loss_standard_error``;
             ``var_standard_error``, ``expected_shortfall_standard_error``,
             ``tail_probability`` = ``P(L > VaR)`` and its standard error, each
@@ -602,9 +602,8 @@ class SampleEngine(Engine):
         }
         if plan is not None:
             settings["plain_share"] = plan.proposal.plain_share
-            settings["tilts"] = [
-                {
-                    "level": t.level,
+            settings["tilts"] = {
+                level_key(t.level): {
                     "share": share,
                     "factor_shift": t.tilt.shift,
                     "target_loss": t.target_loss,
@@ -612,7 +611,7 @@ class SampleEngine(Engine):
                     "log_normaliser": "exact" if t.tilt.psi is None else "interpolated",
                 }
                 for t, share in zip(plan.tilts, plan.proposal.shares, strict=True)
-            ]
+            }
         law = LossDistribution.from_samples(
             losses,
             w,

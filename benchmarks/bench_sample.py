@@ -12,7 +12,7 @@ same engine with importance sampling off) measured in the same run:
 Books are built programmatically with fixed seeds.  Usage::
 
     .venv/bin/python benchmarks/bench_sample.py [--seeds 20] [--samples 20000]
-        [--big 1000000] [--wide 200000] [--workers 2]
+        [--big 1000000] [--wide 200000] [--workers 2] [--sections 123]
 """
 
 from __future__ import annotations
@@ -117,6 +117,7 @@ def main() -> None:
     parser.add_argument("--big", type=int, default=1_000_000)
     parser.add_argument("--wide", type=int, default=200_000)
     parser.add_argument("--workers", type=int, default=2)
+    parser.add_argument("--sections", default="123", help="which tables to print, e.g. 23")
     args = parser.parse_args()
 
     load = os.getloadavg()[0] if hasattr(os, "getloadavg") else float("nan")
@@ -125,18 +126,19 @@ def main() -> None:
 
     plain_book = CreditModel.from_book(build_book(1000, 0))
     linked_book = CreditModel.from_book(build_book(1000, 3000))
-    print("\n(1) importance-sampling variance reduction, 1,000-obligor heterogeneous book")
-    print("    variance ratio = variance of plain MC estimates / variance of IS estimates; "
-          "per CPU-s also divides by the CPU-time ratio (IS / plain MC)")
-    variance_table(plain_book, "no links", args.seeds, args.samples, args.workers)
-    variance_table(linked_book, "3,000 links", args.seeds, args.samples, args.workers)
-
-    print("\n(2) speed, 1,000 obligors and 3,000 links")
-    speed_table(linked_book, "1,000 obligors, 3,000 links", args.big, args.workers)
-
-    print("\n(3) speed, 20,000 obligors without links")
-    wide = CreditModel.from_book(build_book(20_000, 0, seed=8))
-    speed_table(wide, "20,000 obligors", args.wide, args.workers)
+    if "1" in args.sections:
+        print("\n(1) importance-sampling variance reduction, 1,000-obligor heterogeneous book")
+        print("    variance ratio = variance of plain MC estimates / variance of IS estimates; "
+              "per CPU-s also divides by the CPU-time ratio (IS / plain MC)")
+        variance_table(plain_book, "no links", args.seeds, args.samples, args.workers)
+        variance_table(linked_book, "3,000 links", args.seeds, args.samples, args.workers)
+    if "2" in args.sections:
+        print("\n(2) speed, 1,000 obligors and 3,000 links")
+        speed_table(linked_book, "1,000 obligors, 3,000 links", args.big, args.workers)
+    if "3" in args.sections:
+        print("\n(3) speed, 20,000 obligors without links")
+        wide = CreditModel.from_book(build_book(20_000, 0, seed=8))
+        speed_table(wide, "20,000 obligors", args.wide, args.workers)
 
 
 if __name__ == "__main__":

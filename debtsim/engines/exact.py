@@ -23,10 +23,21 @@ about ``1e-12``.
 
 Losses.  When every loss ``EAD * LGD`` is an integer multiple of one unit and
 the grid is not too long, the grid is exact.  Small books without such a
-unit keep their exact loss values (no grid).  Otherwise losses are rounded to
-the nearest point of a grid of ``grid_points`` points and the unit is then
-rescaled so that the expected loss is exact; the rounding is reported in
-``diagnostics``.
+unit keep their exact loss values (no grid).  Otherwise each loss is moved to
+one of its two neighbouring points of a grid of about ``grid_points`` points,
+up or down so that the rounding errors of obligors with similar PD and
+correlation cancel (error diffusion along the PD order): every loss moves by
+less than one unit and the conditional mean loss, at every factor value,
+hardly at all.  The unit is finally rescaled (by about ``1e-5``) so that the
+expected loss is exact.  ``diagnostics`` reports the unit, the largest
+conditional mean shift over the tail nodes and ``discretisation_error``, an
+estimate in currency of the error of VaR and ES.
+
+References
+----------
+L. Andersen, J. Sidenius and S. Basu, "All your hedges in one basket",
+Risk (2003).  O. Vasicek, "Loan portfolio value", Risk 15 (2002).
+
 """
 
 from __future__ import annotations
@@ -528,20 +539,11 @@ def _run_grid(
     cls_k2c = cls_k.astype(float) ** 2 * cls_count
     # expected-loss bookkeeping uses the true losses of every single obligor
     pr_loss = np.bincount(pr_of[single], weights=loss[single], minlength=pr_unique.shape[0])
-    group_bits = [_state_bits(g.members.size) for g in groups]
-    group_pos: list[IntArray] = []
-    group_sort: list[tuple[IntArray, IntArray]] = []
-    for g, bits in zip(groups, group_bits, strict=True):
-        pos = bits @ k_all[g.members]
-        uniq, inverse = np.unique(pos, return_inverse=True)
-        order = np.argsort(inverse, kind="stable")
-        starts = np.flatnonzero(np.r_[True, np.diff(inverse[order]) != 0])
-        group_pos.append(uniq.astype(np.int64))
-        group_sort.append((order, starts))
+    nodes, weights = grid.nodes, grid.weights
+    default_probability = np.zeros(model.n_obligors)
+    glaws = _all_group_laws(groups, model, pr_unique, pr_of, k_all, grid, default_probability)
     mixture = np.zeros(top + 1)
     pr_probability = np.zeros(pr_unique.shape[0])
-    default_probability = np.zeros(model.n_obligors)
-    nodes, weights = grid.nodes, grid.weights
     n_nodes = len(grid)
     exp_k = np.zeros(n_nodes)  # E[K | z] in grid units
     exp_l = np.zeros(n_nodes)  # E[L | z] in currency
@@ -552,34 +554,13 @@ def _run_grid(
         w = weights[start : start + batch]
         p_pr = conditional_default_probability(pr_unique[:, 0], pr_unique[:, 1], z)
         pr_probability += w @ p_pr
-        glaws = []
-        for g, bits, (order, starts) in zip(groups, group_bits, group_sort, strict=True):
-            law = _group_state_law(g, p_pr[:, pr_of[g.members]])
-            marg = np.einsum("js,sm->jm", law, bits.astype(float))
-            default_probability[g.members] += np.einsum("j,jm->m", w, marg)
-            glaws.append((np.add.reduceat(law[:, order], starts, axis=1), marg))
-        g_bound = max((float(pos[-1] - pos[0]) for pos in group_pos), default=0.0)
         if groups:
             dense = []
-            for (merged, _), pos in zip(glaws, group_pos, strict=True):
+            for pos, merged in zip(glaws.positions, glaws.merged, strict=True):
                 block = np.zeros((z.size, int(pos[-1] - pos[0]) + 1))
-                block[:, pos - pos[0]] = merged
+                block[:, pos - pos[0]] = merged[start : start + batch]
                 dense.append((int(pos[0]), block))
             group_offset, group_law_batch = product_law(dense)
-            g_mean = np.zeros(z.size)
-            g_var = np.zeros(z.size)
-            g_low = np.zeros(z.size, dtype=np.int64)
-            g_high = np.zeros(z.size, dtype=np.int64)
-            g_el = np.zeros(z.size)
-            for (merged, marg), pos, g in zip(glaws, group_pos, groups, strict=True):
-                fpos = pos.astype(float)
-                gm = np.einsum("ja,a->j", merged, fpos)
-                g_mean += gm
-                g_var += np.einsum("ja,a->j", merged, fpos * fpos) - gm * gm
-                live = merged > 0
-                g_low += pos[np.argmax(live, axis=1)]
-                g_high += pos[pos.size - 1 - np.argmax(live[:, ::-1], axis=1)]
-                g_el += np.einsum("jm,m->j", marg, loss[g.members])
         for j in range(z.size):
             p = p_pr[j, cls_pr]
             mean = float(np.sum(p * cls_kc))
@@ -590,12 +571,13 @@ def _run_grid(
             highest = int(np.sum(cls_kc[p > 0]))
             el = float(np.sum(p_pr[j] * pr_loss))
             if groups:
-                mean += float(g_mean[j])
-                var += float(g_var[j])
-                lowest += int(g_low[j])
-                highest += int(g_high[j])
-                bound = max(bound, g_bound)
-                el += float(g_el[j])
+                at = start + j
+                mean += float(glaws.mean[at])
+                var += float(glaws.var[at])
+                lowest += int(glaws.low[at])
+                highest += int(glaws.high[at])
+                bound = max(bound, glaws.bound)
+                el += float(glaws.expected_loss[at])
             exp_k[start + j] = mean
             exp_l[start + j] = el
             half = bernstein_halfwidth(var, bound)
@@ -623,6 +605,75 @@ def _run_grid(
         model, plan, unit, exp_k, exp_l, nodes, truncation, widest, grid
     )
     return losses, probs, default_probability, diagnostics, unit
+
+
+@dataclass
+class _GroupLaws:
+    """Loss laws of the link groups at every factor node (grid units)."""
+
+    positions: list[IntArray]  # distinct grid losses of each group
+    merged: list[FloatArray]  # (nodes, len(positions)) probabilities
+    mean: FloatArray  # summed over groups, per node
+    var: FloatArray
+    low: IntArray
+    high: IntArray
+    expected_loss: FloatArray  # in currency
+    bound: float  # widest loss range of one group
+
+
+def _all_group_laws(
+    groups: Sequence[_Group],
+    model: CreditModel,
+    pr_unique: FloatArray,
+    pr_of: IntArray,
+    k_all: IntArray,
+    grid: FactorGrid,
+    default_probability: FloatArray,
+) -> _GroupLaws:
+    """Enumerate every link group at every node; add its members' final PDs."""
+    n_nodes = len(grid)
+    out = _GroupLaws(
+        positions=[],
+        merged=[],
+        mean=np.zeros(n_nodes),
+        var=np.zeros(n_nodes),
+        low=np.zeros(n_nodes, dtype=np.int64),
+        high=np.zeros(n_nodes, dtype=np.int64),
+        expected_loss=np.zeros(n_nodes),
+        bound=0.0,
+    )
+    loss = model.loss_given_default
+    for g in groups:
+        size = g.members.size
+        bits = _state_bits(size)
+        pos = bits.astype(np.int64) @ k_all[g.members]
+        uniq, inverse = np.unique(pos, return_inverse=True)
+        order = np.argsort(inverse, kind="stable")
+        starts = np.flatnonzero(np.r_[True, np.diff(inverse[order]) != 0])
+        merged = np.zeros((n_nodes, uniq.size))
+        chunk = max(1, (1 << 22) >> size)
+        for a in range(0, n_nodes, chunk):
+            z = grid.nodes[a : a + chunk]
+            own = conditional_default_probability(
+                pr_unique[pr_of[g.members], 0], pr_unique[pr_of[g.members], 1], z
+            )
+            law = _group_state_law(g, own)
+            marg = np.einsum("js,sm->jm", law, bits.astype(float))
+            w = grid.weights[a : a + chunk]
+            default_probability[g.members] += np.einsum("j,jm->m", w, marg)
+            out.expected_loss[a : a + chunk] += np.einsum("jm,m->j", marg, loss[g.members])
+            merged[a : a + chunk] = np.add.reduceat(law[:, order], starts, axis=1)
+        fpos = uniq.astype(float)
+        gm = np.einsum("ja,a->j", merged, fpos)
+        out.mean += gm
+        out.var += np.einsum("ja,a->j", merged, fpos * fpos) - gm * gm
+        live = merged > 0
+        out.low += uniq[np.argmax(live, axis=1)]
+        out.high += uniq[uniq.size - 1 - np.argmax(live[:, ::-1], axis=1)]
+        out.bound = max(out.bound, float(uniq[-1] - uniq[0]))
+        out.positions.append(uniq.astype(np.int64))
+        out.merged.append(merged)
+    return out
 
 
 def _grid_diagnostics(

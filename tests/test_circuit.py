@@ -203,6 +203,13 @@ def test_refusal_when_statevector_too_large() -> None:
     assert CircuitEngine(max_qubits=7).refusal(model) is None
 
 
+def test_refusal_of_too_many_obligors(monkeypatch: pytest.MonkeyPatch) -> None:
+    """A book with more obligors than the pattern limit is refused, naming the other engines."""
+    monkeypatch.setattr(circuit_engine, "MAX_OBLIGORS", 3)
+    reason = CircuitEngine().refusal(make_model(BOOKS["chain"]))
+    assert reason is not None and "4 obligors" in reason and "'exact'" in reason
+
+
 def test_refusal_of_large_cycle_and_wide_multiplexer() -> None:
     """A cycle beyond the joint-load limit or a rotation with too many controls is refused."""
     ring = make_model(([(1.0, 0.01, 0.5, 0.1)] * 15, [(i, (i + 1) % 15, 0.1) for i in range(15)]))

@@ -20,18 +20,25 @@ from qiskit_aer import AerSimulator
 from debtsim.circuit import build_circuit, circuit_problem, factor_grid_for, factor_qubits_of
 from debtsim.distribution import LossDistribution
 from debtsim.engines.base import Engine, ProgressHook
-from debtsim.errors import EngineRefusedError
+from debtsim.errors import DebtsimError, EngineRefusedError
 from debtsim.factor import FactorGrid
 from debtsim.model import CreditModel
 
-__all__ = ["DEFAULT_MAX_QUBITS", "CircuitEngine", "statevector_bytes"]
+__all__ = ["DEFAULT_MAX_QUBITS", "MAX_OBLIGORS", "CircuitEngine", "statevector_bytes"]
 
 FloatArray = NDArray[np.float64]
 
 #: Largest circuit (factor plus obligor qubits) the engine accepts.  Measured on
-#: 2 cores (benchmarks/bench_circuit.py): 28 qubits (23 obligors, 5 factor
-#: qubits) in about 50 s with a 4 GiB statevector; 29 qubits took 150 s and 8 GiB.
+#: a 2-core machine shared with other jobs (benchmarks/bench_circuit.py): 28
+#: qubits (23 obligors, 5 factor qubits) in 52-73 s, 4.5 GiB peak memory
+#: (4 GiB statevector); 29 qubits took 152 s and 8.7 GiB.
 DEFAULT_MAX_QUBITS = 28
+
+#: Most obligors the engine accepts, whatever the qubit budget: the exact law is
+#: read from ``2**n`` default patterns.  Measured: 27 obligors with 1 factor
+#: qubit (28 qubits) took 190 s with few distinct losses and 440 s with 114
+#: million distinct ones (12 GiB peak) on a busy 2-core machine.
+MAX_OBLIGORS = 24
 
 
 def statevector_bytes(qubits: int) -> int:
@@ -89,6 +96,13 @@ def _bit_marginals(probs: FloatArray, n: int) -> FloatArray:
     return np.array([probs.reshape(-1, 2, 2**i)[:, 1, :].sum() for i in range(n)])
 
 
+def _checked(result: Any) -> Any:
+    """Return an Aer run's result, or raise a DebtsimError with the simulator's status."""
+    if not result.success:
+        raise DebtsimError(f"circuit engine: the Aer simulator failed: {result.status}")
+    return result
+
+
 class CircuitEngine(Engine):
     """Run the model's circuit on Aer's statevector simulator (CPU).
 
@@ -122,6 +136,8 @@ class CircuitEngine(Engine):
             raise ValueError(f"shots must be a positive integer or None, got {shots}")
         if max_qubits < 1:
             raise ValueError(f"max_qubits must be positive, got {max_qubits}")
+        if factor_grid is not None:
+            factor_qubits_of(factor_grid)  # a power of two of nodes, else ValueError
         self.shots = shots
         self.seed = seed
         self.max_qubits = max_qubits
@@ -141,6 +157,12 @@ class CircuitEngine(Engine):
                 f"({_bytes_text(statevector_bytes(self.max_qubits))}); use the 'sample' or "
                 f"'exact' engine"
             )
+        if model.n_obligors > MAX_OBLIGORS:
+            return (
+                f"the book has {model.n_obligors} obligors and the circuit engine reads its law "
+                f"from 2^{model.n_obligors} default patterns; it accepts at most {MAX_OBLIGORS} "
+                f"obligors; use the 'sample' or 'exact' engine"
+            )
         problem = circuit_problem(model, grid)
         if problem is not None:
             return f"{problem}; use the 'sample' or 'exact' engine"
@@ -153,6 +175,8 @@ class CircuitEngine(Engine):
         ------
         EngineRefusedError
             When :meth:`refusal` gives a reason.
+        DebtsimError
+            When the simulator fails (e.g. out of memory).
 
         """
         reason = self.refusal(model)
@@ -180,7 +204,7 @@ class CircuitEngine(Engine):
         simulator = AerSimulator(method="statevector", precision="double")
         loss_each = np.asarray(model.loss_given_default, dtype=float)
         if not measure:
-            result = simulator.run(qc, shots=1).result()
+            result = _checked(simulator.run(qc, shots=1).result())
             probs = np.asarray(result.data(0)["obligors"], dtype=float)
             if progress is not None:
                 progress(2, steps)
@@ -194,7 +218,7 @@ class CircuitEngine(Engine):
             )
         else:
             seed = self.seed if self.seed is not None else secrets.randbits(31)
-            result = simulator.run(qc, shots=self.shots, seed_simulator=seed).result()
+            result = _checked(simulator.run(qc, shots=self.shots, seed_simulator=seed).result())
             counts = result.data(0)["counts"]
             if progress is not None:
                 progress(2, steps)

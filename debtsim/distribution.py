@@ -100,23 +100,22 @@ class LossDistribution:
         probs = np.asarray(probabilities, dtype=float).ravel()
         scale = max(float(np.max(np.abs(losses))) if losses.size else 0.0, 1.0)
         key = np.round(losses / scale, decimals)
-        uniq, inverse = np.unique(key, return_inverse=True)
-        merged_p = np.bincount(inverse, weights=probs, minlength=uniq.size)
-        # keep a representative exact loss per merged atom (the probability-weighted mean)
-        merged_l = np.bincount(inverse, weights=losses * probs, minlength=uniq.size)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            rep = np.where(merged_p > 0, merged_l / merged_p, uniq * scale)
+        # within each merged group the representative loss is that of its most likely atom,
+        # a real sum of exposures rather than an average carrying float noise
+        order = np.lexsort((-probs, key))
+        key_sorted = key[order]
+        first = np.concatenate(([True], key_sorted[1:] != key_sorted[:-1]))
+        groups = np.cumsum(first) - 1
+        merged_p = np.bincount(groups, weights=probs[order])
+        rep = losses[order][first]
         keep = merged_p > 0
         rep, merged_p = rep[keep], merged_p[keep]
         if rep.size == 0:
             raise ValueError("a loss law needs positive total probability")
-        order = np.argsort(rep, kind="stable")
-        rep, merged_p = rep[order], merged_p[order]
-        # representatives of distinct keys are ascending but may tie after averaging
+        # representatives of distinct keys are ascending but may tie after rounding
         distinct = np.concatenate(([True], np.diff(rep) > 0))
         if not distinct.all():
-            groups = np.cumsum(distinct) - 1
-            merged_p = np.bincount(groups, weights=merged_p)
+            merged_p = np.bincount(np.cumsum(distinct) - 1, weights=merged_p)
             rep = rep[distinct]
         return cls(losses=rep, probabilities=merged_p / merged_p.sum(), **kwargs)
 

@@ -18,10 +18,13 @@ The series coefficients of all obligors are summed into one array of length
 ``W`` (one ``bincount``), so a node costs ``sum_i R_i`` scattered terms plus
 one real FFT pair, however wide the window; ``R_i`` is the number of terms
 obligor *i* needs for the requested accuracy (about 10 for a 1% PD).
-Obligors too close to ``p = 1/2`` for the series are convolved in directly.
-Link groups enter as their exact joint loss law, multiplied in on the same
-roots of unity.  This is the recursion-free form of the one-factor loss
-algorithm of Andersen, Sidenius & Basu (Risk, 2003).
+Obligors too close to ``p = 1/2`` for the series to converge quickly are
+summed exactly instead (binomial-type laws per distinct loss, see
+:func:`bernoulli_sums`); link groups enter as their exact joint loss laws.
+Both are convolved together (:func:`product_law`), folded onto the window
+and multiplied in on the same roots of unity.  This is the recursion-free
+form of the one-factor loss algorithm of Andersen, Sidenius & Basu (Risk,
+2003).
 
 *Atoms.*  For small books the support is kept exactly: a sorted array of
 distinct loss values, built once (it does not depend on the factor), with
@@ -40,9 +43,11 @@ from scipy.signal import fftconvolve
 
 __all__ = [
     "AtomConvolution",
+    "HARD_ORDER",
     "SERIES_TOLERANCE",
     "WINDOW_TAIL",
     "Window",
+    "bernoulli_sums",
     "bernstein_halfwidth",
     "grid_law",
     "product_law",
@@ -56,6 +61,8 @@ IntArray = NDArray[np.int64]
 SERIES_TOLERANCE = 1e-14
 #: Probability allowed outside a node's window on each side (Bernstein bound).
 WINDOW_TAIL = 1e-16
+#: Classes needing more series terms than this are summed exactly instead.
+HARD_ORDER = 512
 #: Series orders are rounded up to these values so obligors batch together.
 _ORDER_BUCKETS = np.unique(np.round(np.sqrt(2.0) ** np.arange(0, 64)).astype(np.int64))
 
@@ -202,6 +209,53 @@ def _log_coefficients(
     return coefficients, const, shift, idx[far], truncation
 
 
+def bernoulli_sums(
+    k: IntArray, p: FloatArray, count: FloatArray
+) -> list[tuple[int, FloatArray]]:
+    """Exact laws of sums of independent Bernoulli losses, one per distinct loss.
+
+    For the classes sharing a grid loss ``k`` the number of defaults has a
+    (Poisson-)binomial law on ``0 .. m``; it is obtained exactly from its
+    characteristic function at the ``m + 1`` roots of unity, then spread on
+    the multiples of ``k``.  Used for obligors whose ``p`` is too close to
+    1/2 for the log-series to converge quickly.
+
+    Parameters
+    ----------
+    k : ndarray of int
+        Grid loss of each class.
+    p : ndarray
+        Default probability of the class.
+    count : ndarray
+        Number of identical obligors in the class.
+
+    Returns
+    -------
+    list of (offset, probabilities)
+        One law per distinct ``k``: value ``offset + t`` with probability
+        ``probabilities[t]`` (offset is 0).
+
+    """
+    out: list[tuple[int, FloatArray]] = []
+    for kk in np.unique(k).tolist():
+        sel = k == kk
+        pp = p[sel]
+        cc = count[sel]
+        m = int(round(float(cc.sum())))
+        t = np.arange(m + 1)
+        root = np.exp((-2j * np.pi / (m + 1)) * t)
+        factors = 1.0 - pp[:, None] + pp[:, None] * root[None, :]
+        single = cc == 1.0
+        values = np.prod(factors[single], axis=0) if single.any() else np.ones(m + 1, complex)
+        for row in np.flatnonzero(~single).tolist():
+            values *= factors[row] ** cc[row]
+        pmf = np.fft.ifft(values).real
+        dense = np.zeros(m * kk + 1)
+        dense[::kk] = pmf
+        out.append((0, dense))
+    return out
+
+
 def product_law(laws: list[tuple[int, FloatArray]]) -> tuple[int, FloatArray]:
     """Law of a sum of independent grid variables, for a batch of nodes.
 
@@ -277,22 +331,19 @@ def grid_law(
     width = window.width
     count = np.ones(k.size) if count is None else np.asarray(count, dtype=float)
     coefficients, const, shift, direct, truncation = _log_coefficients(
-        k, p, count, width, tolerance, max(16, width)
+        k, p, count, width, tolerance, HARD_ORDER
     )
     if coefficients is not None:
         spectrum = np.exp(sfft.rfft(coefficients) + const)
     else:
         spectrum = np.full(width // 2 + 1, np.exp(const), dtype=complex)
-    m = np.arange(width // 2 + 1, dtype=np.int64)
-    for i in direct.tolist():
-        angle = (2.0 * np.pi / width) * np.mod(m * int(k[i]), width)
-        factor = 1.0 - p[i] + p[i] * np.exp(-1j * angle)
-        with np.errstate(divide="ignore"):
-            spectrum *= factor if count[i] == 1 else np.exp(count[i] * np.log(factor))
+    laws = bernoulli_sums(k[direct], p[direct], count[direct]) if direct.size else []
     if extra is not None:
-        offset, probs = extra
+        laws.append(extra)
+    if laws:
+        offset, dense = product_law([(off, law[None, :]) for off, law in laws])
         folded = np.bincount(
-            np.mod(offset + np.arange(probs.size), width), weights=probs, minlength=width
+            np.mod(offset + np.arange(dense.shape[1]), width), weights=dense[0], minlength=width
         )
         spectrum *= sfft.rfft(folded)
     law = sfft.irfft(spectrum, width)

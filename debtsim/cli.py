@@ -13,11 +13,14 @@ import time
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from pathlib import Path
-from typing import Annotated
+from typing import TYPE_CHECKING, Annotated
 
 import typer
 
 from debtsim.errors import BookError, DebtsimError
+
+if TYPE_CHECKING:
+    from debtsim.analysis import RunOptions
 
 __all__ = ["app", "main"]
 
@@ -225,6 +228,201 @@ def circuit(
         tmp.write_text(text, encoding="utf-8")
         tmp.replace(qasm)
         typer.echo(f"OpenQASM 3 written to {qasm}")
+
+
+# --------------------------------------------------------- stress and sweep
+def _run_options(
+    engine: str,
+    samples: int | None,
+    seed: int | None,
+    level: list[float] | None,
+    shots: int | None,
+    copula: bool,
+) -> RunOptions:
+    from debtsim.analysis import RunOptions
+    from debtsim.engines import DEFAULT_SEED, ENGINE_NAMES
+
+    if engine not in ENGINE_NAMES:
+        raise DebtsimError(f"--engine: must be one of {', '.join(ENGINE_NAMES)}, got {engine!r}")
+    return RunOptions(
+        engine=engine,
+        samples=samples,
+        seed=DEFAULT_SEED if seed is None else seed,
+        shots=shots,
+        levels=_check_levels(level),
+        copula=copula,
+    )
+
+
+_WORKERS_HELP = "Run on a local Dask cluster of N worker processes [default: in-process]."
+_SCHEDULER_HELP = "Run on an existing Dask cluster (scheduler ADDRESS, e.g. tcp://host:8786)."
+
+
+@app.command()
+def stress(
+    book: Annotated[Path, typer.Argument(help="Book file (YAML).")],
+    scenarios: Annotated[Path, typer.Argument(help="Scenario file (YAML).")],
+    out: Annotated[
+        Path | None,
+        typer.Option("--out", help="Output folder [default: reports/<book stem>-stress/]."),
+    ] = None,
+    engine: Annotated[
+        str, typer.Option("--engine", help="auto, exact, circuit or sample.")
+    ] = "auto",
+    samples: Annotated[
+        int | None, typer.Option("--samples", min=1, help="Scenarios for the sample engine.")
+    ] = None,
+    seed: Annotated[int | None, typer.Option("--seed", help="Seed for random draws.")] = None,
+    level: Annotated[
+        list[float] | None,
+        typer.Option("--level", help="Confidence level (repeatable) [default: 0.99 0.999]."),
+    ] = None,
+    shots: Annotated[
+        int | None, typer.Option("--shots", min=1, help="Circuit engine: sample N measurements.")
+    ] = None,
+    copula: Annotated[
+        bool, typer.Option("--copula/--no-copula", help="Also run the Gaussian copula.")
+    ] = True,
+    workers: Annotated[int | None, typer.Option("--workers", min=1, help=_WORKERS_HELP)] = None,
+    scheduler: Annotated[
+        str | None, typer.Option("--scheduler", metavar="ADDRESS", help=_SCHEDULER_HELP)
+    ] = None,
+    quiet: Annotated[bool, typer.Option("--quiet", "-q", help="No progress, no summary.")] = False,
+) -> None:
+    """Run BOOK and each scenario of SCENARIOS; write a side-by-side comparison."""
+    from debtsim.report.files import check_output_dir
+    from debtsim.scenarios import load_scenarios
+    from debtsim.schema import load_book
+    from debtsim.stress import run_stress, write_stress
+    from debtsim.sweep import Execution
+
+    try:
+        options = _run_options(engine, samples, seed, level, shots, copula)
+        execution = Execution(workers=workers, scheduler=scheduler)
+        loaded = load_book(book)
+        scenario_list = load_scenarios(scenarios, loaded)
+        out_dir = out if out is not None else Path("reports") / f"{book.stem}-stress"
+        check_output_dir(out_dir)
+        with progress_bars(not quiet) as progress:
+            result = run_stress(
+                loaded, scenario_list, options, execution=execution,
+                progress=progress("scenarios"),
+            )
+        final = write_stress(result, out_dir, source=str(scenarios))
+    except DebtsimError as error:
+        fail(error)
+        return
+    if quiet:
+        return
+    table = result.table
+    cur = loaded.currency
+    top = table.columns[-3]
+    lines = [
+        f"{loaded.name}: base and {len(scenario_list)} scenarios, {result.execution}, "
+        f"{result.seconds:.1f} s",
+        f"  {'scenario':<24} {'expected loss':>16} {top.replace('var_', 'VaR '):>16}",
+    ]
+    for _, row in table.iterrows():
+        lines.append(f"  {str(row['scenario'])[:24]:<24} {row['expected_loss']:>16,.2f} "
+                     f"{row[top]:>16,.2f}")
+    lines.append(f"amounts in {cur}" if cur else "")
+    lines.append(f"report: {final / 'report.html'}   table: {final / 'scenarios.csv'}")
+    lines.append("Model estimates only: not investment or regulatory advice.")
+    typer.echo("\n".join(line for line in lines if line))
+
+
+@app.command()
+def sweep(
+    book: Annotated[Path, typer.Argument(help="Book file (YAML).")],
+    grid: Annotated[
+        list[str] | None,
+        typer.Option(
+            "--grid", metavar="NAME=V1,V2,...",
+            help="Parameter and its values (repeatable): pd_scale, asset_correlation_shift, "
+            "lgd_shift or contagion_scale. The sweep runs the full Cartesian grid.",
+        ),
+    ] = None,
+    out: Annotated[
+        Path | None,
+        typer.Option("--out", help="Output folder [default: reports/<book stem>-sweep/]."),
+    ] = None,
+    engine: Annotated[
+        str, typer.Option("--engine", help="auto, exact, circuit or sample.")
+    ] = "auto",
+    samples: Annotated[
+        int | None, typer.Option("--samples", min=1, help="Scenarios for the sample engine.")
+    ] = None,
+    seed: Annotated[
+        int | None,
+        typer.Option("--seed", help="Base seed; each grid point derives its own from it."),
+    ] = None,
+    level: Annotated[
+        list[float] | None,
+        typer.Option("--level", help="Confidence level (repeatable) [default: 0.99 0.999]."),
+    ] = None,
+    shots: Annotated[
+        int | None, typer.Option("--shots", min=1, help="Circuit engine: sample N measurements.")
+    ] = None,
+    workers: Annotated[int | None, typer.Option("--workers", min=1, help=_WORKERS_HELP)] = None,
+    scheduler: Annotated[
+        str | None, typer.Option("--scheduler", metavar="ADDRESS", help=_SCHEDULER_HELP)
+    ] = None,
+    resume: Annotated[
+        bool,
+        typer.Option(
+            "--resume",
+            help="Keep the points already finished (in OUT.partial/ or a previous OUT/) and "
+            "run only the missing or failed ones.",
+        ),
+    ] = False,
+    quiet: Annotated[bool, typer.Option("--quiet", "-q", help="No progress, no summary.")] = False,
+) -> None:
+    """Run BOOK over a grid of scenario parameters; write sweep.csv, sweep.parquet and charts.
+
+    Every finished point is saved at once in OUT.partial/; an interrupted sweep
+    continues with --resume. The copula is not computed.
+    """
+    from debtsim.schema import load_book
+    from debtsim.sweep import Execution, parse_grid, partial_dir, run_sweep, write_sweep
+
+    out_dir = out if out is not None else Path("reports") / f"{book.stem}-sweep"
+    done = [0]
+    try:
+        options = _run_options(engine, samples, seed, level, shots, False)
+        execution = Execution(workers=workers, scheduler=scheduler)
+        axes = parse_grid(grid or [])
+        loaded = load_book(book)
+        with progress_bars(not quiet) as progress:
+            result = run_sweep(
+                loaded, axes, options, out_dir,
+                execution=execution, resume=resume, progress=progress("grid points"),
+                on_point=lambda _record: done.__setitem__(0, done[0] + 1),
+            )
+        final = write_sweep(result, out_dir)
+    except DebtsimError as error:
+        fail(error)
+        return
+    except KeyboardInterrupt:
+        typer.echo(
+            f"interrupted: the points finished so far ({done[0]} this run) are kept in "
+            f"{partial_dir(out_dir)}; "
+            "run the same command with --resume to finish the rest",
+            err=True,
+        )
+        raise typer.Exit(130) from None
+    if quiet:
+        return
+    lines = [
+        f"{loaded.name}: {len(result.table)} grid points, {result.computed} computed "
+        f"({result.execution}), {result.reused} reused, {result.failed} failed, "
+        f"{result.seconds:.1f} s",
+    ]
+    if result.failed:
+        first = result.table.loc[result.table["status"] != "ok", "error"].iloc[0]
+        lines.append(f"  first failure: {first}")
+    lines.append(f"table: {final / 'sweep.csv'}   report: {final / 'report.html'}")
+    lines.append("Model estimates only: not investment or regulatory advice.")
+    typer.echo("\n".join(lines))
 
 
 def main() -> None:

@@ -15,9 +15,15 @@ Execution
 Seeds
     Each point runs with its own seed, derived from the run's seed and the
     point's parameter values (:func:`point_seed`), never from the order in
-    which points run or where.  Results are therefore identical in-process,
-    on a local cluster or on a remote one, and a point keeps its seed when
-    the grid around it grows.
+    which points run or where, and a point keeps its seed when the grid
+    around it grows.
+
+Threads
+    Each point runs with OpenBLAS held at one thread
+    (:func:`single_blas_thread`), since BLAS splits sums by thread and the
+    thread count would change the last bits.  With the seeds, this makes
+    results identical bit for bit in-process, on a local cluster or on a
+    remote one.
 
 Failures
     A point that raises is recorded in its row (``status`` ``failed``, the
@@ -40,6 +46,7 @@ Resuming
 from __future__ import annotations
 
 import contextlib
+import ctypes
 import hashlib
 import itertools
 import json
@@ -47,6 +54,7 @@ import logging
 import math
 import os
 import shutil
+import threading
 import time
 import warnings
 from collections.abc import Callable, Iterator, Mapping, Sequence
@@ -83,6 +91,7 @@ __all__ = [
     "point_seed",
     "run_sweep",
     "run_tasks",
+    "single_blas_thread",
     "write_sweep",
 ]
 
@@ -356,14 +365,26 @@ def dask_client(execution: Execution) -> Iterator[Any]:
         finally:
             client.close()
         return
+    import dask
+
+    # Dask starts workers with MALLOC_TRIM_THRESHOLD_ set, which also stops
+    # glibc from adapting its mmap threshold: every large numpy temporary is
+    # then a fresh mmap, and the engines ran twice as slow (measured).  Keep
+    # Dask's other settings (one OpenMP/BLAS thread per worker process).
+    environ = {
+        k: v
+        for k, v in dict(dask.config.get("distributed.nanny.pre-spawn-environ", {})).items()
+        if k != "MALLOC_TRIM_THRESHOLD_"
+    }
     try:
-        cluster = LocalCluster(
-            n_workers=execution.workers,
-            threads_per_worker=1,
-            processes=True,
-            dashboard_address=None,
-            silence_logs=logging.ERROR,
-        )
+        with dask.config.set({"distributed.nanny.pre-spawn-environ": environ}):
+            cluster = LocalCluster(
+                n_workers=execution.workers,
+                threads_per_worker=1,
+                processes=True,
+                dashboard_address=None,
+                silence_logs=logging.ERROR,
+            )
     except (OSError, TimeoutError, RuntimeError) as error:
         raise DebtsimError(f"--workers: cannot start a local Dask cluster: {error}") from error
     try:
@@ -374,6 +395,76 @@ def dask_client(execution: Execution) -> Iterator[Any]:
             client.close()
     finally:
         cluster.close()
+
+
+_BLAS_LOCK = threading.Lock()
+_BLAS_STATE: dict[str, Any] = {"active": 0, "saved": []}
+
+
+def _openblas_controls() -> list[tuple[Any, Any]]:
+    """``(set_num_threads, get_num_threads)`` of every OpenBLAS loaded in this process."""
+    import scipy.linalg  # noqa: F401  (loads scipy's own OpenBLAS, used by its routines)
+
+    try:
+        maps = Path("/proc/self/maps").read_text()
+    except OSError:  # not Linux: leave BLAS threading as it is
+        return []
+    paths = sorted(
+        {
+            line.split()[-1]
+            for line in maps.splitlines()
+            if "openblas" in line.rsplit("/", 1)[-1].lower()
+        }
+    )
+    controls = []
+    for path in paths:
+        try:
+            lib = ctypes.CDLL(path)
+        except OSError:
+            continue
+        for name in ("openblas", "scipy_openblas"):
+            for suffix in ("", "64_"):
+                set_ = getattr(lib, f"{name}_set_num_threads{suffix}", None)
+                get = getattr(lib, f"{name}_get_num_threads{suffix}", None)
+                if set_ is not None and get is not None:
+                    controls.append((set_, get))
+    return controls
+
+
+@contextlib.contextmanager
+def single_blas_thread() -> Iterator[None]:
+    """Hold OpenBLAS at one thread inside the block, then restore its thread count.
+
+    BLAS splits sums by thread, so the thread count changes the last bits of
+    results.  Every sweep point and stress run is computed inside this block,
+    wherever it runs, so in-process and Dask results agree bit for bit (and
+    two runs on one core each do not oversubscribe the machine).  Nested and
+    concurrent blocks share one setting.  Only OpenBLAS (what numpy and scipy
+    wheels ship) is controlled; with another BLAS this does nothing.
+    """
+    with _BLAS_LOCK:
+        if _BLAS_STATE["active"] == 0:
+            saved = []
+            for set_, get in _openblas_controls():
+                saved.append((set_, int(get())))
+                set_(1)
+            _BLAS_STATE["saved"] = saved
+        _BLAS_STATE["active"] += 1
+    try:
+        yield
+    finally:
+        with _BLAS_LOCK:
+            _BLAS_STATE["active"] -= 1
+            if _BLAS_STATE["active"] == 0:
+                for set_, count in _BLAS_STATE["saved"]:
+                    set_(count)
+                _BLAS_STATE["saved"] = []
+
+
+def _pinned(fn: Callable[[S, T], R], shared: S, item: T) -> R:
+    """Call ``fn(shared, item)`` with BLAS held at one thread."""
+    with single_blas_thread():
+        return fn(shared, item)
 
 
 def run_tasks(
@@ -411,7 +502,7 @@ def run_tasks(
     if execution.in_process:
         for i, item in enumerate(items):
             try:
-                result: R | BaseException = fn(shared, item)
+                result: R | BaseException = _pinned(fn, shared, item)
             except Exception as error:  # a failed task is reported, not fatal
                 result = error
             on_result(i, result)
@@ -421,7 +512,8 @@ def run_tasks(
     with dask_client(execution) as client:
         shared_future = client.scatter(shared, broadcast=True, hash=False)
         futures = {
-            client.submit(fn, shared_future, item, pure=False): i for i, item in enumerate(items)
+            client.submit(_pinned, fn, shared_future, item, pure=False): i
+            for i, item in enumerate(items)
         }
         try:
             for future in as_completed(futures):

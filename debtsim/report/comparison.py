@@ -233,7 +233,9 @@ def loss_laws_chart(
 
     """
     fig, ax = _figure(10.0, 4.6)
-    floor = min((1.0 - float(a) for a in levels), default=1e-3) / 20
+    # the tail beyond 1/100 of the smallest tail probability asked for is not drawn
+    floor = min((1.0 - float(a) for a in levels), default=1e-3) / 100
+    right = 0.0
     for j, (name, law) in enumerate(zip(names, laws, strict=True)):
         x, y = _exceedance(law)
         keep = y > 0
@@ -243,9 +245,12 @@ def loss_laws_chart(
         ax.step(
             xs, ys, where="post", color=colour, linewidth=2.2 if j == 0 else 1.6, label=_plain(name)
         )
-        floor = min(floor, float(ys.min()) / 2)
+        visible = xs[ys >= floor]
+        right = max(right, float(visible[-1]) if visible.size else float(xs[-1]))
     ax.set_yscale("log")
-    ax.set_ylim(max(floor, 1e-12), 1.5)
+    ax.set_ylim(floor, 1.5)
+    if right > 0:
+        ax.set_xlim(left=min(0.0, ax.get_xlim()[0]), right=right * 1.04)
     for a in levels:
         ax.axhline(1 - float(a), color="#bbbbbb", linewidth=0.8)
         ax.annotate(
@@ -260,7 +265,7 @@ def loss_laws_chart(
     ax.set_xlabel(f"loss level l ({_plain(currency)})" if currency else "loss level l")
     ax.set_ylabel("P(loss > l)")
     _amounts(ax, "x")
-    ax.legend(frameon=False, fontsize=8, loc="upper right")
+    ax.legend(frameon=False, fontsize=8, loc="lower left")
     ax.set_title("Loss laws: probability that the loss exceeds l", loc="left", fontsize=11)
     return _png(fig)
 
@@ -433,16 +438,14 @@ def _line_chart(
 ) -> bytes:
     fig, ax = _figure(8.0, 4.2)
     frame = frame.sort_values(axis)
-    for j, m in enumerate(measures):
-        ax.plot(
-            frame[axis],
-            frame[m],
-            "o-",
-            color=PALETTE[j % len(PALETTE)],
-            ms=4,
-            linewidth=1.6,
-            label=_label(m),
-        )
+    levels = sorted({m.rsplit("_", 1)[-1] for m in measures if m != "expected_loss"})
+    for m in measures:
+        if m == "expected_loss":
+            colour, style = BASE_COLOUR, "o-"
+        else:
+            colour = PALETTE[levels.index(m.rsplit("_", 1)[-1]) % len(PALETTE)]
+            style = "o--" if m.startswith("expected_shortfall_") else "o-"
+        ax.plot(frame[axis], frame[m], style, color=colour, ms=4, linewidth=1.6, label=_label(m))
     ax.set_xlabel(axis)
     ax.set_ylabel(_plain(currency) if currency else "amount")
     _amounts(ax)

@@ -10,7 +10,9 @@ Execution
     ``Execution(workers=N)`` starts a local Dask cluster of *N* worker
     processes (one thread each); ``Execution(scheduler=ADDRESS)`` uses an
     existing Dask cluster, whose workers must be able to import debtsim.
-    The book is sent to the workers once; each point is one task.
+    The book is sent to the workers once; each point is one task.  Worker
+    processes are spawned, so a script that calls :func:`run_sweep` with
+    workers must guard its entry point with ``if __name__ == "__main__":``.
 
 Seeds
     Each point runs with its own seed, derived from the run's seed and the

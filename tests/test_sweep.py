@@ -156,7 +156,11 @@ def test_point_seed_depends_on_values_not_order() -> None:
 def test_sweep_rows_match_single_runs(tmp_path: Path) -> None:
     """Each row holds the measures of that scenario run on its own with the point's seed."""
     options = RunOptions(engine=_exact_engine(), copula=False)
-    result = run_sweep(BOOK, AXES, options, tmp_path / "out")
+    ticks: list[tuple[int, int]] = []
+    result = run_sweep(
+        BOOK, AXES, options, tmp_path / "out", progress=lambda d, t: ticks.append((d, t))
+    )
+    assert ticks == [(i, 6) for i in range(7)]  # the progress bar counts grid points
     table = result.table
     assert list(table.columns) == [
         "pd_scale",

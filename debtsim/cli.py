@@ -120,7 +120,7 @@ def run(
     """Compute the loss law of BOOK and write the report folder."""
     from debtsim.analysis import RunOptions, analyse
     from debtsim.engines import DEFAULT_SEED, ENGINE_NAMES
-    from debtsim.report import write_run
+    from debtsim.report import check_output_dir, write_run
     from debtsim.schema import load_book
 
     try:
@@ -139,6 +139,7 @@ def run(
             copula=copula,
         )
         out_dir = out if out is not None else Path("reports") / book.stem
+        check_output_dir(out_dir)
         with progress_bars(not quiet) as progress:
             analysis = analyse(loaded, options, progress=progress)
         final = write_run(analysis, out_dir)

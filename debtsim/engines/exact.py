@@ -115,7 +115,9 @@ class ExactEngine(Engine):
     factor_order : int
         Gauss–Legendre nodes per panel of the default grid.
     grid_points : int
-        Length of the loss grid when losses must be rounded to one.
+        Longest loss grid when losses must be rounded to one (books with
+        fewer than ``grid_points / 1024`` obligors get about 1024 points per
+        obligor).
     max_component_size : int
         Largest link group enumerated exactly (``2**size`` joint states).
     exact_support_limit : int
@@ -136,7 +138,7 @@ class ExactEngine(Engine):
         factor_order: int = 8,
         grid_points: int = 2**17,
         max_component_size: int = 16,
-        exact_support_limit: int = 2**18,
+        exact_support_limit: int = 2**20,
         node_batch: int = 64,
     ) -> None:
         if factor_resolution <= 0:
@@ -435,7 +437,9 @@ def _choose_losses(
                 break
     if feasible:
         return _LossPlan("atoms", 0.0, np.zeros(loss.size, dtype=np.int64), 0, atoms)
-    unit = float(loss.sum()) / grid_points
+    # about 1024 grid points per loss-bearing obligor, at most grid_points
+    points = min(grid_points, max(8192, 1024 * int(np.count_nonzero(loss > 0))))
+    unit = float(loss.sum()) / points
     k = _diffused_round(loss / unit, pd, correlation)
     return _LossPlan("grid", unit, k, int(k.sum()))
 
@@ -503,6 +507,9 @@ def _run_atoms(
     keep = probs > 0
     diagnostics: dict[str, Any] = {
         "discretisation_error": 0.0,
+        "discretisation_error_relative": 0.0,
+        "conditional_mean_shift": 0.0,
+        "loss_rounding_bound": 0.0,
         "grid_exact": True,
         "factor_truncation_mass": float(2.0 * ndtr(-FACTOR_LIMIT))
         if grid.method.startswith("adaptive")

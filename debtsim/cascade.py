@@ -1,4 +1,4 @@
-"""Exact conditional laws of final defaults inside one group of linked obligors.
+r"""Exact conditional laws of final defaults inside one group of linked obligors.
 
 Conditional on the factor, own defaults and link liveness are independent, so
 the final defaults of a strongly connected group of obligors (firms that lend

@@ -53,7 +53,9 @@ class Problem:
 
     def __str__(self) -> str:
         where = f"{self.file}:{self.line}" if self.line is not None else self.file
-        return f"{where}: {self.field}: {self.message}" if self.field else f"{where}: {self.message}"
+        if self.field:
+            return f"{where}: {self.field}: {self.message}"
+        return f"{where}: {self.message}"
 
 
 class BookError(DebtsimError):

@@ -24,7 +24,10 @@ __all__ = ["irb_capital", "irb_correlation", "irb_maturity_adjustment", "irb_ris
 
 
 def irb_correlation(pd: ArrayLike) -> NDArray[np.float64]:
-    """Supervisory corporate correlation ``R = 0.12 w + 0.24 (1 - w)``, ``w = (1-e^{-50 PD})/(1-e^{-50})``."""
+    """Supervisory corporate correlation ``R = 0.12 w + 0.24 (1 - w)``.
+
+    With ``w = (1 - e^{-50 PD}) / (1 - e^{-50})``.
+    """
     pd = np.asarray(pd, dtype=float)
     w = (1.0 - np.exp(-50.0 * pd)) / (1.0 - np.exp(-50.0))
     return 0.12 * w + 0.24 * (1.0 - w)

@@ -144,7 +144,7 @@ class CreditModel:
         return conditional_default_probability(self.pd, self.asset_correlation, z)
 
     def without_links(self) -> CreditModel:
-        """The same obligors with no links: the one-factor Gaussian copula."""
+        """Return the same obligors with no links: the one-factor Gaussian copula."""
         empty_i = np.zeros(0, dtype=np.int64)
         empty_i.setflags(write=False)
         empty_f = np.zeros(0, dtype=float)
@@ -227,5 +227,5 @@ class CreditModel:
         return tuple(c for c in self.strong_components if c.size > 1)
 
     def incoming_links(self, obligor: int) -> IntArray:
-        """Indices of links whose creditor is ``obligor`` (its exposures to debtors)."""
+        """Return the links whose creditor is ``obligor`` (its claims on debtors)."""
         return np.flatnonzero(self.creditor == obligor)

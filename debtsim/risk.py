@@ -42,7 +42,7 @@ def expected_loss(dist: LossDistribution) -> float:
 
 
 def loss_std(dist: LossDistribution) -> float:
-    """Standard deviation of ``L``."""
+    """Return the standard deviation of ``L``."""
     return dist.std
 
 
@@ -61,7 +61,7 @@ def value_at_risk(dist: LossDistribution, level: float) -> float:
 
 
 def expected_shortfall(dist: LossDistribution, level: float) -> float:
-    """Expected shortfall with the atom at VaR split.
+    """Return the expected shortfall, splitting the atom at VaR.
 
     ``ES_a = (E[L 1{L > VaR_a}] + VaR_a (P(L <= VaR_a) - a)) / (1 - a)``.
 
@@ -100,7 +100,7 @@ class RiskMeasures:
     economic_capital: dict[str, float]
 
     def to_dict(self) -> dict[str, object]:
-        """The ``measures`` object of ``summary.json``."""
+        """Return the ``measures`` object of ``summary.json``."""
         return {
             "expected_loss": self.expected_loss,
             "loss_std": self.loss_std,

@@ -20,11 +20,13 @@ KINDS = ["Farms", "Mills", "Haulage", "Builders", "Foods", "Energy", "Supplies",
 
 
 def firm_name(rng: np.random.Generator) -> str:
+    """Return an invented two-syllable firm name."""
     first = "".join(rng.choice(SYLLABLES, size=2)).capitalize()
     return f"{first} {rng.choice(KINDS)}"
 
 
 def rating_pd(rng: np.random.Generator, size: int) -> np.ndarray:
+    """Draw PDs from an invented rating-grade mix."""
     grades = np.array([0.0005, 0.001, 0.002, 0.004, 0.008, 0.015, 0.03, 0.06, 0.12])
     weights = np.array([0.04, 0.08, 0.14, 0.2, 0.2, 0.15, 0.1, 0.06, 0.03])
     return rng.choice(grades, size=size, p=weights / weights.sum())
@@ -64,6 +66,7 @@ def clustered_links(rng, ids, cluster_sizes, cycle_share):
 
 
 def grain_coop() -> None:
+    """Write the mid-size demo book with lending cycles."""
     rng = np.random.default_rng(20261202)
     n = 60
     ids = [f"GC{i:03d}" for i in range(1, n + 1)]
@@ -84,6 +87,7 @@ def grain_coop() -> None:
 
 
 def regional_bank() -> None:
+    """Write the 3,000-loan CSV demo book."""
     rng = np.random.default_rng(7)
     n = 3000
     ids = [f"RB{i:05d}" for i in range(1, n + 1)]

@@ -33,7 +33,7 @@ def enumerate_law(
     loss_each = np.asarray(ead, float) * np.asarray(lgd, float)
     law: dict[float, float] = {}
     dp = np.zeros(n)
-    for z, w in zip(nodes, weights):
+    for z, w in zip(nodes, weights, strict=True):
         p = [
             1.0 if pd[i] >= 1 else
             float(norm.cdf((norm.ppf(pd[i]) - np.sqrt(rho[i]) * z) / np.sqrt(1 - rho[i])))
@@ -47,7 +47,7 @@ def enumerate_law(
                 continue
             for live in itertools.product((0, 1), repeat=len(links)):
                 prob = p_own
-                for (c, d, q), on in zip(links, live):
+                for (_c, _d, q), on in zip(links, live, strict=True):
                     prob *= q if on else 1 - q
                 if prob == 0.0:
                     continue
@@ -55,7 +55,7 @@ def enumerate_law(
                 stack = [i for i in range(n) if own[i]]
                 while stack:
                     d_ = stack.pop()
-                    for (c, d, q), on in zip(links, live):
+                    for (c, d, _q), on in zip(links, live, strict=True):
                         if on and d == d_ and not final[c]:
                             final[c] = True
                             stack.append(c)

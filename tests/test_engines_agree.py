@@ -56,7 +56,7 @@ def reference(book: Book, nodes, weights) -> tuple[dict[float, float], np.ndarra
 
 
 def as_dict(dist: LossDistribution) -> dict[float, float]:
-    return {round(float(l), 9): float(p) for l, p in zip(dist.losses, dist.probabilities,
+    return {round(float(x), 9): float(p) for x, p in zip(dist.losses, dist.probabilities,
                                                          strict=True)}
 
 

@@ -46,7 +46,7 @@ def test_es_with_atoms_hand_computed() -> None:
 )
 def test_es_equals_quantile_integral(atoms, level) -> None:
     """ES with the atom split equals the integral of the quantile function above a."""
-    losses, probs = zip(*atoms)
+    losses, probs = zip(*atoms, strict=True)
     d = law(losses, probs)
     assert expected_shortfall(d, level) == pytest.approx(es_by_quantile_integral(d, level),
                                                          rel=1e-9, abs=1e-6)
@@ -60,7 +60,7 @@ def test_es_equals_quantile_integral(atoms, level) -> None:
 )
 def test_es_dominates_var_and_both_rise_with_level(atoms, level, step) -> None:
     """ES >= VaR, and both are non-decreasing in the confidence level."""
-    losses, probs = zip(*atoms)
+    losses, probs = zip(*atoms, strict=True)
     d = law(losses, probs)
     lo, hi = level, level + step
     assert expected_shortfall(d, lo) >= value_at_risk(d, lo) - 1e-9

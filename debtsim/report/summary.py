@@ -40,7 +40,16 @@ OBLIGOR_COLUMNS = (
     "expected_loss",
     "own_default_probability",
     "contagion_uplift",
+    "default_probability_standard_error",
 )
+
+#: Per-obligor diagnostics: written as a column of ``obligors.csv``, not into ``summary.json``.
+PER_OBLIGOR_DIAGNOSTICS = ("default_probability_standard_error",)
+
+
+def _book_level(diagnostics: Any) -> dict[str, Any]:
+    """Diagnostics without the per-obligor arrays (those go to ``obligors.csv``)."""
+    return {k: v for k, v in dict(diagnostics).items() if k not in PER_OBLIGOR_DIAGNOSTICS}
 
 
 def summary_dict(analysis: Analysis) -> dict[str, Any]:
@@ -79,7 +88,7 @@ def summary_dict(analysis: Analysis) -> dict[str, Any]:
             "engine": cd.engine,
             "seed": cd.seed,
             "engine_settings": dict(cd.settings),
-            "diagnostics": dict(cd.diagnostics),
+            "diagnostics": _book_level(cd.diagnostics),
         }
     effect = contagion_effect(analysis.measures, analysis.copula_measures)
     links = [
@@ -108,7 +117,7 @@ def summary_dict(analysis: Analysis) -> dict[str, Any]:
         "levels": [level_key(a) for a in analysis.options.levels],
         "engine_reason": analysis.engine_reason,
         "engine_settings": dict(dist.settings),
-        "diagnostics": dict(dist.diagnostics),
+        "diagnostics": _book_level(dist.diagnostics),
         "notes": list(analysis.notes),
         "contagion": {
             **effect,
@@ -125,6 +134,7 @@ def obligor_rows(analysis: Analysis) -> list[list[Any]]:
     """Rows of ``obligors.csv`` in book order, columns as :data:`OBLIGOR_COLUMNS`."""
     book = analysis.book
     oc = obligor_contagion(book, analysis.distribution.default_probability)
+    errors = analysis.distribution.diagnostics.get("default_probability_standard_error")
     return [
         [
             o.id,
@@ -138,6 +148,7 @@ def obligor_rows(analysis: Analysis) -> list[list[Any]]:
             float(oc.expected_loss[i]),
             float(oc.own_default_probability[i]),
             float(oc.contagion_uplift[i]),
+            "" if errors is None else float(errors[i]),
         ]
         for i, o in enumerate(book.obligors)
     ]

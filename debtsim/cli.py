@@ -90,54 +90,67 @@ def _check_levels(levels: list[float] | None) -> tuple[float, ...]:
     return levels_from(levels)
 
 
+# ------------------------------------------------ options shared by run, stress and sweep
+BookArg = Annotated[Path, typer.Argument(help="Book file (YAML).")]
+EngineOpt = Annotated[str, typer.Option("--engine", help="auto, exact, circuit or sample.")]
+SamplesOpt = Annotated[
+    int | None, typer.Option("--samples", min=1, help="Scenarios for the sample engine.")
+]
+LevelOpt = Annotated[
+    list[float] | None,
+    typer.Option("--level", help="Confidence level (repeatable) (default: 0.99 0.999)."),
+]
+ShotsOpt = Annotated[
+    int | None,
+    typer.Option(
+        "--shots", min=1,
+        help="Circuit engine: sample N measurements instead of the exact statevector law.",
+    ),
+]
+CopulaOpt = Annotated[
+    bool, typer.Option("--copula/--no-copula", help="Also run the Gaussian copula.")
+]
+QuietOpt = Annotated[bool, typer.Option("--quiet", "-q", help="No progress, no summary.")]
+WorkersOpt = Annotated[
+    int | None,
+    typer.Option(
+        "--workers", min=1,
+        help="Run on a local Dask cluster of N worker processes (default: in-process).",
+    ),
+]
+SchedulerOpt = Annotated[
+    str | None,
+    typer.Option(
+        "--scheduler", metavar="ADDRESS",
+        help="Run on an existing Dask cluster (scheduler ADDRESS, e.g. tcp://host:8786).",
+    ),
+]
+
+
+def _out_option(default: str) -> object:
+    return typer.Option("--out", help=f"Output folder (default: {default}).")
+
+
 @app.command()
 def run(
-    book: Annotated[Path, typer.Argument(help="Book file (YAML).")],
-    out: Annotated[
-        Path | None, typer.Option("--out", help="Output folder [default: reports/<book stem>/].")
-    ] = None,
-    engine: Annotated[
-        str, typer.Option("--engine", help="auto, exact, circuit or sample.")
-    ] = "auto",
-    samples: Annotated[
-        int | None, typer.Option("--samples", min=1, help="Scenarios for the sample engine.")
-    ] = None,
+    book: BookArg,
+    out: Annotated[Path | None, _out_option("reports/<book stem>/")] = None,
+    engine: EngineOpt = "auto",
+    samples: SamplesOpt = None,
     seed: Annotated[int | None, typer.Option("--seed", help="Seed for random draws.")] = None,
-    level: Annotated[
-        list[float] | None,
-        typer.Option("--level", help="Confidence level (repeatable) [default: 0.99 0.999]."),
-    ] = None,
-    shots: Annotated[
-        int | None,
-        typer.Option("--shots", min=1, help="Circuit engine: sample N measurements instead of "
-                     "the exact statevector law."),
-    ] = None,
-    copula: Annotated[
-        bool, typer.Option("--copula/--no-copula", help="Also run the Gaussian copula.")
-    ] = True,
-    quiet: Annotated[bool, typer.Option("--quiet", "-q", help="No progress, no summary.")] = False,
+    level: LevelOpt = None,
+    shots: ShotsOpt = None,
+    copula: CopulaOpt = True,
+    quiet: QuietOpt = False,
 ) -> None:
     """Compute the loss law of BOOK and write the report folder."""
-    from debtsim.analysis import RunOptions, analyse
-    from debtsim.engines import DEFAULT_SEED, ENGINE_NAMES
+    from debtsim.analysis import analyse
     from debtsim.report import check_output_dir, write_run
     from debtsim.schema import load_book
 
     try:
-        if engine not in ENGINE_NAMES:
-            raise DebtsimError(
-                f"--engine: must be one of {', '.join(ENGINE_NAMES)}, got {engine!r}"
-            )
-        levels = _check_levels(level)
+        options = _run_options(engine, samples, seed, level, shots, copula)
         loaded = load_book(book)
-        options = RunOptions(
-            engine=engine,
-            samples=samples,
-            seed=DEFAULT_SEED if seed is None else seed,
-            shots=shots,
-            levels=levels,
-            copula=copula,
-        )
         out_dir = out if out is not None else Path("reports") / book.stem
         check_output_dir(out_dir)
         with progress_bars(not quiet) as progress:
@@ -177,7 +190,7 @@ def _print_run(analysis: object, folder: Path) -> None:
 
 
 @app.command()
-def check(book: Annotated[Path, typer.Argument(help="Book file (YAML).")]) -> None:
+def check(book: BookArg) -> None:
     """Validate BOOK and print a one-screen overview; writes nothing."""
     from debtsim.overview import format_overview, overview
     from debtsim.schema import load_book
@@ -193,7 +206,7 @@ def check(book: Annotated[Path, typer.Argument(help="Book file (YAML).")]) -> No
 
 @app.command()
 def circuit(
-    book: Annotated[Path, typer.Argument(help="Book file (YAML).")],
+    book: BookArg,
     qasm: Annotated[
         Path | None, typer.Option("--qasm", help="Write the circuit as OpenQASM 3 to FILE.")
     ] = None,
@@ -255,40 +268,22 @@ def _run_options(
     )
 
 
-_WORKERS_HELP = "Run on a local Dask cluster of N worker processes [default: in-process]."
-_SCHEDULER_HELP = "Run on an existing Dask cluster (scheduler ADDRESS, e.g. tcp://host:8786)."
 
 
 @app.command()
 def stress(
-    book: Annotated[Path, typer.Argument(help="Book file (YAML).")],
+    book: BookArg,
     scenarios: Annotated[Path, typer.Argument(help="Scenario file (YAML).")],
-    out: Annotated[
-        Path | None,
-        typer.Option("--out", help="Output folder [default: reports/<book stem>-stress/]."),
-    ] = None,
-    engine: Annotated[
-        str, typer.Option("--engine", help="auto, exact, circuit or sample.")
-    ] = "auto",
-    samples: Annotated[
-        int | None, typer.Option("--samples", min=1, help="Scenarios for the sample engine.")
-    ] = None,
+    out: Annotated[Path | None, _out_option("reports/<book stem>-stress/")] = None,
+    engine: EngineOpt = "auto",
+    samples: SamplesOpt = None,
     seed: Annotated[int | None, typer.Option("--seed", help="Seed for random draws.")] = None,
-    level: Annotated[
-        list[float] | None,
-        typer.Option("--level", help="Confidence level (repeatable) [default: 0.99 0.999]."),
-    ] = None,
-    shots: Annotated[
-        int | None, typer.Option("--shots", min=1, help="Circuit engine: sample N measurements.")
-    ] = None,
-    copula: Annotated[
-        bool, typer.Option("--copula/--no-copula", help="Also run the Gaussian copula.")
-    ] = True,
-    workers: Annotated[int | None, typer.Option("--workers", min=1, help=_WORKERS_HELP)] = None,
-    scheduler: Annotated[
-        str | None, typer.Option("--scheduler", metavar="ADDRESS", help=_SCHEDULER_HELP)
-    ] = None,
-    quiet: Annotated[bool, typer.Option("--quiet", "-q", help="No progress, no summary.")] = False,
+    level: LevelOpt = None,
+    shots: ShotsOpt = None,
+    copula: CopulaOpt = True,
+    workers: WorkersOpt = None,
+    scheduler: SchedulerOpt = None,
+    quiet: QuietOpt = False,
 ) -> None:
     """Run BOOK and each scenario of SCENARIOS; write a side-by-side comparison."""
     from debtsim.report.files import check_output_dir
@@ -334,7 +329,7 @@ def stress(
 
 @app.command()
 def sweep(
-    book: Annotated[Path, typer.Argument(help="Book file (YAML).")],
+    book: BookArg,
     grid: Annotated[
         list[str] | None,
         typer.Option(
@@ -343,31 +338,17 @@ def sweep(
             "lgd_shift or contagion_scale. The sweep runs the full Cartesian grid.",
         ),
     ] = None,
-    out: Annotated[
-        Path | None,
-        typer.Option("--out", help="Output folder [default: reports/<book stem>-sweep/]."),
-    ] = None,
-    engine: Annotated[
-        str, typer.Option("--engine", help="auto, exact, circuit or sample.")
-    ] = "auto",
-    samples: Annotated[
-        int | None, typer.Option("--samples", min=1, help="Scenarios for the sample engine.")
-    ] = None,
+    out: Annotated[Path | None, _out_option("reports/<book stem>-sweep/")] = None,
+    engine: EngineOpt = "auto",
+    samples: SamplesOpt = None,
     seed: Annotated[
         int | None,
         typer.Option("--seed", help="Base seed; each grid point derives its own from it."),
     ] = None,
-    level: Annotated[
-        list[float] | None,
-        typer.Option("--level", help="Confidence level (repeatable) [default: 0.99 0.999]."),
-    ] = None,
-    shots: Annotated[
-        int | None, typer.Option("--shots", min=1, help="Circuit engine: sample N measurements.")
-    ] = None,
-    workers: Annotated[int | None, typer.Option("--workers", min=1, help=_WORKERS_HELP)] = None,
-    scheduler: Annotated[
-        str | None, typer.Option("--scheduler", metavar="ADDRESS", help=_SCHEDULER_HELP)
-    ] = None,
+    level: LevelOpt = None,
+    shots: ShotsOpt = None,
+    workers: WorkersOpt = None,
+    scheduler: SchedulerOpt = None,
     resume: Annotated[
         bool,
         typer.Option(
@@ -376,7 +357,7 @@ def sweep(
             "run only the missing or failed ones.",
         ),
     ] = False,
-    quiet: Annotated[bool, typer.Option("--quiet", "-q", help="No progress, no summary.")] = False,
+    quiet: QuietOpt = False,
 ) -> None:
     """Run BOOK over a grid of scenario parameters; write sweep.csv, sweep.parquet and charts.
 

@@ -25,6 +25,8 @@ __all__ = [
     "MAX_ATOMS_DRAWN",
     "comparison_chart",
     "loss_law_chart",
+    "new_figure",
+    "plain_text",
     "png_base64",
     "short_amount",
     "tail_chart",
@@ -54,12 +56,13 @@ def short_amount(x: float) -> str:
     return f"{x:.3g}"
 
 
-def _plain(text: str) -> str:
+def plain_text(text: object) -> str:
     """Keep user text literal in matplotlib (``$`` would start mathtext)."""
-    return text.replace("$", r"\$")
+    return str(text).replace("$", r"\$")
 
 
-def _figure(width: float = 9.0, height: float = 4.0) -> tuple[Figure, Axes]:
+def new_figure(width: float = 9.0, height: float = 4.0) -> tuple[Figure, Axes]:
+    """Return a figure on the Agg canvas with the house axis style."""
     fig = Figure(figsize=(width, height), dpi=DPI)
     FigureCanvasAgg(fig)
     ax = fig.add_subplot()
@@ -110,7 +113,7 @@ def loss_law_chart(
         Base64 PNG.
 
     """
-    fig, ax = _figure()
+    fig, ax = new_figure()
     large = dist.losses.size > MAX_ATOMS_DRAWN or (
         copula is not None and copula.losses.size > MAX_ATOMS_DRAWN
     )
@@ -162,7 +165,7 @@ def loss_law_chart(
         ax.annotate(f"VaR {', '.join(levels)}", (var, 0.5), xycoords=("data", "axes fraction"),
                     xytext=(3, 0), textcoords="offset points", color=MARK_COLOUR, fontsize=9,
                     rotation=90, va="center")
-    unit = f" ({_plain(currency)})" if currency else ""
+    unit = f" ({plain_text(currency)})" if currency else ""
     ax.set_xlabel(f"portfolio loss{unit}{bin_note}")
     _amount_axis(ax)
     ax.legend(frameon=False, loc="lower right", bbox_to_anchor=(1.0, 1.0), ncol=2, fontsize=9)
@@ -242,7 +245,7 @@ def tail_chart(
         Base64 PNG.
 
     """
-    fig, ax = _figure()
+    fig, ax = new_figure()
     deepest = min((1.0 - float(k) for k in measures.var), default=1e-3)
     floor = deepest / 20
     curves = []
@@ -284,7 +287,7 @@ def tail_chart(
     if not drawn:
         ax.text(0.5, 0.5, "no loss above the smallest outcome", transform=ax.transAxes,
                 ha="center", color="#555555")
-    ax.set_xlabel(f"loss level l ({_plain(currency)})" if currency else "loss level l")
+    ax.set_xlabel(f"loss level l ({plain_text(currency)})" if currency else "loss level l")
     ax.set_ylabel("P(loss > l)")
     _amount_axis(ax)
     if drawn:
@@ -314,7 +317,7 @@ def comparison_chart(
             copula.var.get(key, np.nan) if copula else np.nan,
             copula.expected_shortfall.get(key, np.nan) if copula else np.nan,
         ]
-    fig, ax = _figure(9.0, 3.8)
+    fig, ax = new_figure(9.0, 3.8)
     x = np.arange(len(names))
     width = 0.38 if copula is not None else 0.6
     if copula is not None:
@@ -329,7 +332,7 @@ def comparison_chart(
     ax.bar_label(bars_m, labels=[short_amount(v) for v in model_vals], fontsize=8, padding=2)
     ax.set_xticks(x, names)
     ax.set_ylim(bottom=min(0.0, *model_vals, *(v for v in copula_vals if np.isfinite(v))))
-    ax.set_ylabel(_plain(currency) if currency else "amount")
+    ax.set_ylabel(plain_text(currency) if currency else "amount")
     _amount_axis(ax, "y")
     ax.margins(y=0.12)
     ax.legend(frameon=False, loc="upper left")
@@ -359,7 +362,7 @@ def uplift_chart(
 
     """
     n = len(labels)
-    fig, ax = _figure(9.0, max(2.2, 0.28 * n + 1.0))
+    fig, ax = new_figure(9.0, max(2.2, 0.28 * n + 1.0))
     ax.grid(False, axis="y")
     ax.grid(True, axis="x", color="#e3e6ea", linewidth=0.8)
     y = np.arange(n)[::-1]
@@ -368,7 +371,7 @@ def uplift_chart(
     ax.barh(y, own_a, color=COPULA_COLOUR, height=0.7, label="own PD")
     ax.barh(y, up_a, left=own_a, color=CONTAGION_COLOUR, height=0.7,
             label="added by contagion")
-    ax.set_yticks(y, [_plain(t) for t in labels], fontsize=8)
+    ax.set_yticks(y, [plain_text(t) for t in labels], fontsize=8)
     ax.xaxis.set_major_formatter(PercentFormatter(1.0, decimals=None))
     ax.set_xlabel("final default probability")
     ax.set_xlim(left=0)

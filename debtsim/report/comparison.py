@@ -24,6 +24,7 @@ from matplotlib.figure import Figure
 from matplotlib.ticker import FuncFormatter, PercentFormatter
 
 from debtsim.distribution import LossDistribution
+from debtsim.report.charts import new_figure, plain_text
 from debtsim.report.summary import CAUTION
 from debtsim.risk import level_key
 
@@ -66,21 +67,6 @@ def _short(x: float) -> str:
         if ax >= bound:
             return f"{x / bound:.3g}{suffix}"
     return "0" if ax == 0 else f"{x:.3g}"
-
-
-def _plain(text: str) -> str:
-    """Keep user text literal in matplotlib (``$`` would start mathtext)."""
-    return str(text).replace("$", r"\$")
-
-
-def _figure(width: float = 9.0, height: float = 4.0) -> tuple[Figure, Axes]:
-    fig = Figure(figsize=(width, height), dpi=DPI)
-    FigureCanvasAgg(fig)
-    ax = fig.add_subplot()
-    ax.spines[["top", "right"]].set_visible(False)
-    ax.grid(True, axis="y", color="#e3e6ea", linewidth=0.8)
-    ax.set_axisbelow(True)
-    return fig, ax
 
 
 def _png(fig: Figure) -> bytes:
@@ -185,15 +171,18 @@ def measures_by_scenario_chart(
         measures += [f"var_{level_key(a)}", f"expected_shortfall_{level_key(a)}"]
     names = list(table["scenario"])
     n = len(names)
-    fig, ax = _figure(10.0, 4.2)
+    fig, ax = new_figure(10.0, 4.2)
     x = np.arange(len(measures))
     width = 0.8 / max(n, 1)
     for j, name in enumerate(names):
         values = table.loc[table["scenario"] == name, measures].to_numpy(dtype=float).ravel()
         colour = BASE_COLOUR if j == 0 else PALETTE[(j - 1) % len(PALETTE)]
-        ax.bar(x - 0.4 + width * (j + 0.5), values, width * 0.92, color=colour, label=_plain(name))
+        ax.bar(
+            x - 0.4 + width * (j + 0.5), values, width * 0.92, color=colour,
+            label=plain_text(name),
+        )
     ax.set_xticks(x, [_label(m) for m in measures])
-    ax.set_ylabel(_plain(currency) if currency else "amount")
+    ax.set_ylabel(plain_text(currency) if currency else "amount")
     _amounts(ax)
     ax.legend(frameon=False, fontsize=8, ncol=min(n, 4), loc="upper left")
     ax.margins(y=0.15)
@@ -232,7 +221,7 @@ def loss_laws_chart(
         PNG.
 
     """
-    fig, ax = _figure(10.0, 4.6)
+    fig, ax = new_figure(10.0, 4.6)
     # the tail beyond 1/100 of the smallest tail probability asked for is not drawn
     floor = min((1.0 - float(a) for a in levels), default=1e-3) / 100
     right = 0.0
@@ -243,7 +232,8 @@ def loss_laws_chart(
         ys = np.concatenate((y[keep], [y[keep][-1]]))
         colour = BASE_COLOUR if j == 0 else PALETTE[(j - 1) % len(PALETTE)]
         ax.step(
-            xs, ys, where="post", color=colour, linewidth=2.2 if j == 0 else 1.6, label=_plain(name)
+            xs, ys, where="post", color=colour, linewidth=2.2 if j == 0 else 1.6,
+            label=plain_text(name),
         )
         visible = xs[ys >= floor]
         right = max(right, float(visible[-1]) if visible.size else float(xs[-1]))
@@ -262,7 +252,7 @@ def loss_laws_chart(
             fontsize=8,
             color="#777777",
         )
-    ax.set_xlabel(f"loss level l ({_plain(currency)})" if currency else "loss level l")
+    ax.set_xlabel(f"loss level l ({plain_text(currency)})" if currency else "loss level l")
     ax.set_ylabel("P(loss > l)")
     _amounts(ax, "x")
     ax.legend(frameon=False, fontsize=8, loc="lower left")
@@ -290,7 +280,7 @@ def movers_chart(table: pd.DataFrame, names: Sequence[str], top: int) -> bytes:
     """
     rows = table.head(top)
     n = len(rows)
-    fig, ax = _figure(10.0, max(2.4, 0.32 * n + 1.2))
+    fig, ax = new_figure(10.0, max(2.4, 0.32 * n + 1.2))
     ax.grid(False, axis="y")
     ax.grid(True, axis="x", color="#e3e6ea", linewidth=0.8)
     y = np.arange(n)[::-1]
@@ -308,7 +298,7 @@ def movers_chart(table: pd.DataFrame, names: Sequence[str], top: int) -> bytes:
             "o",
             color=PALETTE[j % len(PALETTE)],
             ms=5,
-            label=_plain(name),
+            label=plain_text(name),
             zorder=3,
         )
     ax.plot(
@@ -319,10 +309,10 @@ def movers_chart(table: pd.DataFrame, names: Sequence[str], top: int) -> bytes:
         mec=BASE_COLOUR,
         mew=1.6,
         ms=9,
-        label=_plain(names[0]),
+        label=plain_text(names[0]),
         zorder=4,
     )
-    ax.set_yticks(y, [_plain(t[:40]) for t in labels], fontsize=8)
+    ax.set_yticks(y, [plain_text(t[:40]) for t in labels], fontsize=8)
     ax.xaxis.set_major_formatter(PercentFormatter(1.0, decimals=None))
     ax.set_xlabel("final default probability (contagion included)")
     ax.set_xlim(left=0)
@@ -436,7 +426,7 @@ def _headline(levels: Sequence[float]) -> list[str]:
 def _line_chart(
     frame: pd.DataFrame, axis: str, measures: Sequence[str], currency: str, title: str
 ) -> bytes:
-    fig, ax = _figure(8.0, 4.2)
+    fig, ax = new_figure(8.0, 4.2)
     frame = frame.sort_values(axis)
     levels = sorted({m.rsplit("_", 1)[-1] for m in measures if m != "expected_loss"})
     for m in measures:
@@ -447,10 +437,10 @@ def _line_chart(
             style = "o--" if m.startswith("expected_shortfall_") else "o-"
         ax.plot(frame[axis], frame[m], style, color=colour, ms=4, linewidth=1.6, label=_label(m))
     ax.set_xlabel(axis)
-    ax.set_ylabel(_plain(currency) if currency else "amount")
+    ax.set_ylabel(plain_text(currency) if currency else "amount")
     _amounts(ax)
     ax.legend(frameon=False, fontsize=8)
-    ax.set_title(_plain(title), loc="left", fontsize=11)
+    ax.set_title(plain_text(title), loc="left", fontsize=11)
     return _png(fig)
 
 
@@ -490,10 +480,10 @@ def _heat_map(
                 color="white" if math.isfinite(v) and v > mid else "#222222",
             )
     bar = fig.colorbar(image, ax=ax)
-    bar.set_label(f"{_label(measure)} ({_plain(currency)})" if currency else _label(measure))
+    bar.set_label(f"{_label(measure)} ({plain_text(currency)})" if currency else _label(measure))
     bar.formatter = FuncFormatter(lambda v, _pos: _short(v))
     bar.update_ticks()
-    ax.set_title(_plain(title), loc="left", fontsize=11)
+    ax.set_title(plain_text(title), loc="left", fontsize=11)
     return _png(fig)
 
 

@@ -396,3 +396,32 @@ def test_exact_log_normaliser_path_gives_the_same_weights(monkeypatch):
     assert plan_exact is not None and all(t.tilt.psi is None for t in plan_exact.tilts)
     np.testing.assert_array_equal(interpolated.losses, exact.losses)
     np.testing.assert_allclose(interpolated.weights, exact.weights, rtol=1e-9)
+
+
+def test_exact_log_normaliser_is_zero_where_p_underflows_and_twist_is_large():
+    """A term with p(z) = 0 exactly and a twist past e^700 is log(1) = 0, not -inf."""
+    a = np.array([-80.0, 0.0])  # p = Phi(-80 - z) underflows to 0 for the first obligor
+    b = np.array([1.0, 1.0])
+    scaled = np.array([1.0, 1e-6])
+    psi = exact_log_normaliser(a, b, scaled, np.array([1e3]), np.array([0.0]))
+    # the second term is log(1 - 1/2 + e^(1e-3)/2) computed directly
+    assert psi[0] == pytest.approx(math.log(0.5 + 0.5 * math.exp(1e-3)), rel=1e-12)
+
+
+@pytest.mark.parametrize("rho", [0.99, 0.999])
+def test_importance_sampling_is_unbiased_for_asset_correlation_near_one(rho):
+    """With R near 1 (p(z) a near step, underflowing to 0) the weights average 1 and EL is right."""
+    n = 6
+    model = make_model([1000.0] * n, [0.45] * n, [0.01] * n, [rho] * n)
+    plan = plan_importance(model, LEVELS)
+    assert plan is not None
+    for tp in plan.tilts:
+        z = np.linspace(*tp.tilt.window, 101)
+        assert np.all(np.isfinite(tp.tilt.twist(z)))
+    scen, _ = SampleEngine(samples=100_000, seed=4, importance=True).simulate(model)
+    w = scen.weights
+    assert abs(w.mean() - 1.0) < 4 * w.std(ddof=1) / math.sqrt(w.size)
+    # expected loss is sum EAD * LGD * PD whatever the correlation
+    el = float(w @ scen.losses) / w.sum()
+    el_se = float(np.sqrt(np.sum((w / w.sum()) ** 2 * (scen.losses - el) ** 2)))
+    assert abs(el - n * 1000.0 * 0.45 * 0.01) < 4 * el_se

@@ -133,9 +133,10 @@ def exact_log_normaliser(
             p = ndtr(a[None, :] - b[None, :] * zz[:, None])
             s = th[:, None] * scaled_loss[None, :]
             terms = np.log1p(p * np.expm1(s))
-            big = s > 700.0  # e^s overflows: log(1 - p + p e^s) = s + log(p + (1 - p) e^-s)
+            big = s > 700.0  # e^s overflows: log(1 - p + p e^s) = logaddexp(log(1-p), log p + s)
             if big.any():
-                terms[big] = s[big] + np.log(p[big] + (1.0 - p[big]) * np.exp(-s[big]))
+                # stays exact where p underflowed to 0 (term 0) or is 1 (term s)
+                terms[big] = np.logaddexp(np.log1p(-p[big]), np.log(p[big]) + s[big])
             out[lo : lo + step] = terms.sum(1)
     return out
 

@@ -111,6 +111,9 @@ BATCHES = 32
 WINDOW = 5.0
 #: Largest acceptable error of the interpolated log-weight term.
 LOG_WEIGHT_TOLERANCE = 1e-9
+#: Largest twist (per largest ``EAD * LGD``): ``e^1024`` already exceeds any double odds
+#: ratio, and a larger one only costs precision in the log-weights.
+MAX_TWIST = 1024.0
 #: Factor grid for the target loss and the shift search.
 _GRID = np.linspace(-8.0, 8.0, 161)
 
@@ -183,13 +186,19 @@ def _solve_twist(p: FloatArray, scaled_loss: FloatArray, target: float) -> Float
         return theta
     lo = np.zeros(g)
     hi = np.ones(g)
-    for _ in range(60):
+    short = need
+    while hi.max() < MAX_TWIST:
         m_hi, _ = mean_var(hi)
         short = need & (m_hi < target)
         if not short.any():
             break
         lo = np.where(short, hi, lo)
         hi = np.where(short, 2.0 * hi, hi)
+    else:
+        m_hi, _ = mean_var(hi)
+        short = need & (m_hi < target)
+    # rows out of reach (p underflowed to 0) keep the largest twist, not an astronomic one
+    capped = short
     theta = np.where(need, 0.5 * (lo + hi), 0.0)
     for _ in range(100):
         m, v = mean_var(theta)
@@ -205,7 +214,7 @@ def _solve_twist(p: FloatArray, scaled_loss: FloatArray, target: float) -> Float
             theta = new
             break
         theta = new
-    return theta
+    return np.where(capped, hi, theta)
 
 
 def _conditional_pd(a: FloatArray, b: FloatArray, z: FloatArray) -> FloatArray:

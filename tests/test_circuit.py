@@ -59,6 +59,11 @@ BOOKS: dict[str, Spec] = {
         [(100, 0.05, 0.45, 0.0), (200, 0.1, 0.6, 0.0), (50, 0.02, 0.4, 0.2), (80, 0.04, 0.5, 0.0)],
         [(1, 0, 0.3), (2, 1, 1.0), (3, 2, 0.0)],
     ),
+    # every R = 0: no rotation uses the factor register, which Aer would truncate away
+    "all_uncorrelated": (
+        [(100, 0.05, 0.45, 0.0), (200, 0.1, 0.6, 0.0), (50, 0.02, 0.4, 0.0)],
+        [(0, 1, 1.0), (2, 1, 0.4), (2, 0, 0.5)],
+    ),
 }
 
 
@@ -268,3 +273,15 @@ def test_made_by_registry_with_settings() -> None:
     assert isinstance(engine, CircuitEngine)
     dist = engine.run(model, progress=lambda done, total: None)
     assert dist.seed is None and abs(dist.probabilities.sum() - 1.0) < 1e-12
+
+
+def test_all_uncorrelated_linked_book_with_shots_matches_exact() -> None:
+    """With every R = 0 (idle factor register) measured shots agree with the exact law."""
+    model = make_model(BOOKS["all_uncorrelated"])
+    exact = CircuitEngine().run(model)
+    shots = 20_000
+    sampled = CircuitEngine(shots=shots, seed=3).run(model)
+    sig = np.sqrt(exact.default_probability * (1 - exact.default_probability) / shots)
+    assert np.all(np.abs(sampled.default_probability - exact.default_probability) <= 5 * sig)
+    # independent defaults: P(D_0) = p0 + q (1 - p0) p1 by hand
+    assert exact.default_probability[0] == pytest.approx(0.05 + 1.0 * 0.95 * 0.1, abs=1e-12)

@@ -201,7 +201,11 @@ class CircuitEngine(Engine):
             "qubits": n + k,
             "shots": self.shots,
         }
-        simulator = AerSimulator(method="statevector", precision="double")
+        # Aer's qubit truncation drops idle factor qubits (every R = 0) and then remaps the
+        # native multiplexer wrongly: wrong probabilities or heap corruption (qiskit-aer 0.18)
+        simulator = AerSimulator(
+            method="statevector", precision="double", enable_truncation=False
+        )
         loss_each = np.asarray(model.loss_given_default, dtype=float)
         if not measure:
             result = _checked(simulator.run(qc, shots=1).result())

@@ -285,3 +285,11 @@ def test_all_uncorrelated_linked_book_with_shots_matches_exact() -> None:
     assert np.all(np.abs(sampled.default_probability - exact.default_probability) <= 5 * sig)
     # independent defaults: P(D_0) = p0 + q (1 - p0) p1 by hand
     assert exact.default_probability[0] == pytest.approx(0.05 + 1.0 * 0.95 * 0.1, abs=1e-12)
+
+
+def test_refusal_of_a_book_of_thousands_of_obligors_names_its_size() -> None:
+    """A 2,000-obligor book is refused with a message, not an OverflowError from its size."""
+    n = 2000
+    spec: Spec = ([(100.0, 0.01, 0.45, 0.2)] * n, [(i, i + 1, 0.3) for i in range(n - 1)])
+    reason = CircuitEngine().refusal(make_model(spec))
+    assert reason is not None and "2^2007 B" in reason  # 16 bytes * 2^(2000 + 3)

@@ -9,6 +9,7 @@ measured that many times with the given seed.
 
 from __future__ import annotations
 
+import math
 import secrets
 from typing import Any
 
@@ -47,7 +48,9 @@ def statevector_bytes(qubits: int) -> int:
 
 
 def _bytes_text(n: int) -> str:
-    """``n`` bytes in binary units, e.g. ``2.0 GiB``."""
+    """``n`` bytes in binary units, e.g. ``2.0 GiB``; past 1024 EiB as a power of two."""
+    if n >= 1024**7:  # thousands of qubits: float(n) would overflow
+        return f"2^{math.log2(n):.0f} B"
     value = float(n)
     for unit in ("B", "KiB", "MiB", "GiB", "TiB", "PiB", "EiB"):
         if value < 1024.0 or unit == "EiB":

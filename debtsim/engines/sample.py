@@ -205,8 +205,8 @@ def _solve_twist(p: FloatArray, scaled_loss: FloatArray, target: float) -> Float
         gap = m - target
         lo = np.where(gap < 0, theta, lo)
         hi = np.where(gap > 0, theta, hi)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            step = theta - gap / v
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            step = theta - gap / v  # a non-finite step falls back to bisection below
         bad = ~np.isfinite(step) | (step <= lo) | (step >= hi)
         new = np.where(bad, 0.5 * (lo + hi), step)
         new = np.where(need, new, 0.0)

@@ -417,3 +417,23 @@ def test_twenty_thousand_obligor_book() -> None:
         assert expected_shortfall(finer, level) == pytest.approx(
             expected_shortfall(dist, level), rel=1e-3
         )
+
+
+def test_default_grid_with_pd_near_one_beside_a_small_pd() -> None:
+    """PD 0.999999 next to a small-PD obligor gives a modest grid and the brute-force law."""
+    # 1 - p(z) of the near-certain default rounds to 0 where its slope does not; the node
+    # density once divided by that zero variance and asked for 2.7e8 nodes (ValueError)
+    spec: Spec = (
+        [(6.308, 0.05, 0.45, 0.99), (2.099, 0.999999, 0.3, 0.9), (1874.245, 0.002, 0.45, 0.9)],
+        [(2, 0, 1.0), (0, 2, 0.5)],
+    )
+    model = make_model(spec)
+    engine = ExactEngine()
+    grid = engine.default_factor_grid(model)
+    assert len(grid) < 2000
+    dist = engine.run(model)
+    ead, pd, lgd, rho, links = spec_columns(spec)
+    # independent reference on the same nodes (tests/reference.py)
+    law, dp = enumerate_law(ead, lgd, pd, rho, links, grid.nodes, grid.weights)
+    assert law_error(dist.losses, dist.probabilities, law) < 1e-9
+    np.testing.assert_allclose(dist.default_probability, dp, rtol=0, atol=1e-9)

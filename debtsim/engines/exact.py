@@ -224,7 +224,8 @@ class ExactEngine(Engine):
             p = ndtr(x)
             slope = np.exp(-0.5 * x * x) / math.sqrt(2.0 * math.pi) * (sr / s1r)[None, :]
             dmean = slope @ sum_l
-            var = (p * (1.0 - p)) @ sum_l2
+            # 1 - p as ndtr(-x): near p = 1 the difference rounds to 0 while the slope does not
+            var = (p * ndtr(-x)) @ sum_l2
             with np.errstate(divide="ignore", invalid="ignore"):
                 sharp = np.where(var > 0, resolution * dmean / np.sqrt(var), 0.0)
             inside = (ndtr(z) >= _SHARP_REGION_TAIL) & (ndtr(-z) >= _SHARP_REGION_TAIL)

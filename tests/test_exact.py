@@ -437,3 +437,11 @@ def test_default_grid_with_pd_near_one_beside_a_small_pd() -> None:
     law, dp = enumerate_law(ead, lgd, pd, rho, links, grid.nodes, grid.weights)
     assert law_error(dist.losses, dist.probabilities, law) < 1e-9
     np.testing.assert_allclose(dist.default_probability, dp, rtol=0, atol=1e-9)
+
+
+def test_denormal_conditional_pd_raises_no_warning() -> None:
+    """An R = 0.99 obligor, whose p(z) goes denormal in the tail, runs without a RuntimeWarning."""
+    # RuntimeWarnings are errors in the test run; the exact EL is EAD * LGD * PD
+    model = make_model(([(3.885, 0.002, 0.0, 0.2), (5.261, 0.05, 0.45, 0.99)], []))
+    dist = ExactEngine().run(model)
+    assert dist.mean == pytest.approx(5.261 * 0.45 * 0.05, rel=1e-12)

@@ -169,7 +169,8 @@ def _log_coefficients(
     pp = p[idx]
     cc = count[idx]
     flip = pp > 0.5
-    theta = np.where(flip, (1.0 - pp) / pp, pp / (1.0 - pp))
+    with np.errstate(over="ignore"):  # the branch not taken overflows for denormal p
+        theta = np.where(flip, (1.0 - pp) / pp, pp / (1.0 - pp))
     # order R with theta^(R+1) / ((R+1)(1-theta)) <= tolerance / total count
     each = tolerance / float(cc.sum())
     with np.errstate(divide="ignore", invalid="ignore"):

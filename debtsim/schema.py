@@ -298,8 +298,17 @@ def _check_range(
     return number
 
 
+#: Largest exposure accepted: far above any single real exposure in any currency, and far
+#: below where squares of losses overflow a float.
+MAX_EAD = 1e18
+
+
 def _ead_test(x: float) -> str | None:
-    return "must be greater than 0" if x <= 0 else None
+    if x <= 0:
+        return "must be greater than 0"
+    if x > MAX_EAD:
+        return f"must be at most {MAX_EAD:g} (check the units)"
+    return None
 
 
 def _pd_test(x: float) -> str | None:
@@ -359,7 +368,7 @@ def _fast_obligor(cells: dict[str, str], line: int) -> Obligor | None:
         rho = float(cells["asset_correlation"])
     except ValueError:
         return None
-    if ident and 0 < ead < math.inf and 0 < pd < 1 and 0 <= lgd <= 1 and 0 <= rho < 1:
+    if ident and 0 < ead <= MAX_EAD and 0 < pd < 1 and 0 <= lgd <= 1 and 0 <= rho < 1:
         name = cells.get("name", "").strip()
         sector = cells.get("sector", "").strip()
         return Obligor(ident, ead, pd, lgd, rho, name, sector, line)

@@ -968,3 +968,21 @@ def test_mutated_fixture_gives_book_error_only(data: st.DataObject) -> None:
             load_book(path)
         except BookError as error:
             assert error.problems
+
+
+def test_absurd_exposure_is_refused(tmp_path) -> None:
+    """An EAD beyond 1e18 is refused with the value, before any float can overflow."""
+    import pytest as _pytest
+
+    from debtsim.errors import BookError
+    from debtsim.schema import load_book
+
+    book = tmp_path / "huge.yaml"
+    book.write_text(
+        "book: huge\nobligors:\n"
+        "  - {id: A, ead: 1.0e+200, pd: 0.01, lgd: 0.4, asset_correlation: 0.1}\n"
+    )
+    with _pytest.raises(BookError) as info:
+        load_book(book)
+    assert "huge.yaml:3: obligors[0].ead: must be at most 1e+18" in str(info.value)
+    assert "1e+200" in str(info.value) or "1.0e+200" in str(info.value)

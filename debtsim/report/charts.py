@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import base64
 import io
+import warnings
 from collections.abc import Sequence
 
 import numpy as np
@@ -75,7 +76,10 @@ def new_figure(width: float = 9.0, height: float = 4.0) -> tuple[Figure, Axes]:
 def png_base64(fig: Figure) -> str:
     """Render ``fig`` to PNG and return it base64-encoded (ASCII)."""
     buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=DPI, bbox_inches="tight")
+    with warnings.catch_warnings():
+        # a name in a script the bundled font lacks is drawn as boxes; say nothing on stderr
+        warnings.filterwarnings("ignore", message="Glyph .* missing from font")
+        fig.savefig(buf, format="png", dpi=DPI, bbox_inches="tight")
     return base64.b64encode(buf.getvalue()).decode("ascii")
 
 

@@ -151,6 +151,7 @@ def analyse(
         )
         copula_measures = measures(copula_dist, options.levels)
     return Analysis(
+        notes=_notes(dist),
         book=book,
         model=model,
         options=options,
@@ -161,6 +162,25 @@ def analyse(
         copula_distribution=copula_dist,
         copula_measures=copula_measures,
     )
+
+
+#: Above this relative PD error of the circuit's factor nodes, the run carries a note.
+NODE_ERROR_NOTE = 0.01
+
+
+def _notes(dist: LossDistribution) -> tuple[str, ...]:
+    """Warnings for the reader that the law's own diagnostics call for."""
+    notes = []
+    node_error = float(dist.diagnostics.get("factor_node_pd_error", 0.0))
+    if node_error > NODE_ERROR_NOTE:
+        nodes = dist.settings.get("factor_nodes", "its")
+        notes.append(
+            f"The circuit's {nodes} factor nodes reproduce an obligor's PD only to within "
+            f"{node_error:.1%} (high asset correlation makes the conditional PD nearly a step); "
+            "raise model.factor_qubits or use the exact engine, which places its nodes where "
+            "the conditional law moves."
+        )
+    return tuple(notes)
 
 
 def levels_from(values: Sequence[float] | None) -> tuple[float, ...]:

@@ -127,3 +127,20 @@ def test_no_link_el_matches_pd_sum() -> None:
     assert ExactEngine().run(model).mean == pytest.approx(analytic, rel=1e-9)
     # Gauss-Hermite with 8 nodes integrates the smooth p(z) to ~1e-4 relative (measured)
     assert CircuitEngine().run(model).mean == pytest.approx(analytic, rel=1e-3)
+
+
+def test_circuit_reports_node_error_and_run_notes_it() -> None:
+    """At R = 0.99 the circuit's fixed nodes misstate PD; the law and the run say so."""
+    from debtsim.analysis import RunOptions, analyse
+
+    obligors = tuple(Obligor(id=f"S{i}", ead=100.0, pd=0.01, lgd=0.45, asset_correlation=0.99)
+                     for i in range(4))
+    book = Book(name="steep", currency="EUR", obligors=obligors, factor_qubits=5)
+    model = CreditModel.from_book(book)
+    d = CircuitEngine().run(model)
+    assert d.diagnostics["factor_node_pd_error"] > 0.05
+    # moderate correlation: 32 Gauss-Hermite nodes are accurate (measured ~1e-5 relative)
+    calm = CircuitEngine().run(CreditModel.from_book(BOOKS["no links"]))
+    assert calm.diagnostics["factor_node_pd_error"] < 1e-3
+    run = analyse(book, RunOptions(engine="circuit", copula=False))
+    assert any("factor nodes" in note for note in run.notes)

@@ -106,6 +106,27 @@ def _checked(result: Any) -> Any:
     return result
 
 
+def factor_node_pd_error(model: CreditModel, grid: FactorGrid) -> float:
+    """Largest relative error of the factor nodes in reproducing an obligor's PD.
+
+    Parameters
+    ----------
+    model : CreditModel
+    grid : FactorGrid
+        The nodes the circuit loads.
+
+    Returns
+    -------
+    float
+        ``max_i |sum_j w_j p_i(z_j) - PD_i| / PD_i``: zero for exact integration; large when
+        a high asset correlation makes ``p_i(z)`` nearly a step the nodes cannot resolve.
+    """
+    if model.n_obligors == 0:
+        return 0.0
+    integrated = grid.weights @ model.conditional_pd(grid.nodes)
+    return float(np.max(np.abs(integrated - model.pd) / model.pd))
+
+
 class CircuitEngine(Engine):
     """Run the model's circuit on Aer's statevector simulator (CPU).
 
@@ -210,6 +231,7 @@ class CircuitEngine(Engine):
             method="statevector", precision="double", enable_truncation=False
         )
         loss_each = np.asarray(model.loss_given_default, dtype=float)
+        node_error = factor_node_pd_error(model, grid)
         if not measure:
             result = _checked(simulator.run(qc, shots=1).result())
             probs = np.asarray(result.data(0)["obligors"], dtype=float)
@@ -221,7 +243,10 @@ class CircuitEngine(Engine):
             dist = LossDistribution.from_atoms(
                 losses, weights, engine=self.name, default_probability=dp,
                 samples=None, seed=None, settings=settings,
-                diagnostics={"probability_mass_error": abs(1.0 - mass)},
+                diagnostics={
+                    "probability_mass_error": abs(1.0 - mass),
+                    "factor_node_pd_error": node_error,
+                },
             )
         else:
             seed = self.seed if self.seed is not None else secrets.randbits(31)
@@ -239,7 +264,10 @@ class CircuitEngine(Engine):
             dist = LossDistribution.from_samples(
                 losses, weights, engine=self.name, default_probability=weights @ bits / total,
                 samples=self.shots, seed=seed, settings=settings,
-                diagnostics={"expected_loss_standard_error": float(np.sqrt(var / total))},
+                diagnostics={
+                    "expected_loss_standard_error": float(np.sqrt(var / total)),
+                    "factor_node_pd_error": node_error,
+                },
             )
         if progress is not None:
             progress(steps, steps)

@@ -10,6 +10,7 @@ loss law.
 
 from __future__ import annotations
 
+import heapq
 from dataclasses import dataclass
 from functools import cached_property
 
@@ -204,8 +205,6 @@ class CreditModel:
         for a, b in sorted(edges):
             children[a].append(b)
             indegree[b] += 1
-        import heapq
-
         ready = [c for c in range(n_comp) if indegree[c] == 0]
         heapq.heapify(ready)
         order: list[int] = []

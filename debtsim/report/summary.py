@@ -8,6 +8,7 @@ from debtsim.analysis import Analysis
 from debtsim.contagion import contagion_effect, obligor_contagion, rank_links
 from debtsim.report.files import GENERATOR_KEY, generator
 from debtsim.risk import level_key
+from debtsim.schema import OBLIGOR_FIELDS
 
 __all__ = [
     "CAUTION",
@@ -29,13 +30,7 @@ SUMMARY_LINKS = 10
 
 #: Columns of ``obligors.csv``: the book's fields, the contract's two results, then extras.
 OBLIGOR_COLUMNS = (
-    "id",
-    "name",
-    "sector",
-    "ead",
-    "pd",
-    "lgd",
-    "asset_correlation",
+    *OBLIGOR_FIELDS,
     "default_probability",
     "expected_loss",
     "own_default_probability",

@@ -19,15 +19,15 @@ import time
 import numpy as np
 from qiskit_aer import AerSimulator
 
-from debtsim.book import Book, Link, Obligor
-from debtsim.circuit import build_circuit, decompose_circuit
-from debtsim.engines.circuit import DEFAULT_MAX_QUBITS, CircuitEngine
-from debtsim.model import CreditModel
+from debtsim.book.records import Book, Link, Obligor
+from debtsim.engines.circuit.builder import build_circuit, decompose_circuit
+from debtsim.engines.circuit.engine import DEFAULT_MAX_QUBITS, CircuitEngine
+from debtsim.model.specification import LinkedFactorModel
 
 FACTOR_QUBITS = 5
 
 
-def bench_book(n: int) -> CreditModel:
+def bench_book(n: int) -> LinkedFactorModel:
     rng = np.random.default_rng(n)
     obligors = tuple(
         Obligor(
@@ -46,7 +46,7 @@ def bench_book(n: int) -> CreditModel:
         Link(creditor=f"B{i:03d}", debtor=f"B{i - 3:03d}", contagion=0.2) for i in range(4, n, 4)
     ]
     book = Book("bench", "EUR", obligors, tuple(links), factor_qubits=FACTOR_QUBITS)
-    return CreditModel.from_book(book)
+    return LinkedFactorModel.from_book(book)
 
 
 def time_engine(qubits: int, repeat: int) -> tuple[float, float, float]:

@@ -32,9 +32,9 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from debtsim.book import Book, Obligor  # noqa: E402
-from debtsim.engines.exact import ExactEngine  # noqa: E402
-from debtsim.model import CreditModel  # noqa: E402
+from debtsim.book.records import Book, Obligor  # noqa: E402
+from debtsim.engines.exact.engine import ExactEngine  # noqa: E402
+from debtsim.model.specification import LinkedFactorModel  # noqa: E402
 from debtsim.risk import expected_shortfall, level_key, value_at_risk  # noqa: E402
 
 BASELINE = "sample engine, 200,000 scenarios"
@@ -50,7 +50,7 @@ def basel_correlation(pd: np.ndarray) -> np.ndarray:
     return 0.12 * w + 0.24 * (1 - w)
 
 
-def rating_book(n: int, seed: int) -> CreditModel:
+def rating_book(n: int, seed: int) -> LinkedFactorModel:
     """Rating-grade book: 16 PD grades, IRB correlation, LGD 25/45/75%, log-normal EAD."""
     rng = np.random.default_rng(seed)
     pd = GRADES[np.clip(np.round(rng.normal(7, 2.5, n)), 0, GRADES.size - 1).astype(int)]
@@ -59,7 +59,7 @@ def rating_book(n: int, seed: int) -> CreditModel:
     return _model(f"rating {n}", ead, pd, lgd, basel_correlation(pd))
 
 
-def continuous_book(n: int, seed: int) -> CreditModel:
+def continuous_book(n: int, seed: int) -> LinkedFactorModel:
     """Every obligor different: log-normal PD (0.03%-20%), IRB R, uniform LGD, log-normal EAD."""
     rng = np.random.default_rng(seed)
     pd = np.clip(np.exp(rng.normal(np.log(0.01), 1.0, n)), 3e-4, 0.2)
@@ -68,13 +68,13 @@ def continuous_book(n: int, seed: int) -> CreditModel:
     return _model(f"continuous {n}", ead, pd, lgd, basel_correlation(pd))
 
 
-def _model(name: str, ead, pd, lgd, r) -> CreditModel:
+def _model(name: str, ead, pd, lgd, r) -> LinkedFactorModel:
     obligors = tuple(
         Obligor(id=f"F{i:06d}", ead=float(ead[i]), pd=float(pd[i]), lgd=float(lgd[i]),
                 asset_correlation=float(r[i]))
         for i in range(len(ead))
     )
-    return CreditModel.from_book(Book(name=name, currency="EUR", obligors=obligors))
+    return LinkedFactorModel.from_book(Book(name=name, currency="EUR", obligors=obligors))
 
 
 def timed(fn):
@@ -84,7 +84,7 @@ def timed(fn):
 
 
 def sampler(samples: int, seed: int, importance: bool):
-    from debtsim.engines.sample import SampleEngine
+    from debtsim.engines.sample.engine import SampleEngine
 
     return SampleEngine(samples=samples, seed=seed, levels=(0.99, LEVEL), importance=importance)
 

@@ -27,9 +27,9 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
-from debtsim.book import Book, Link, Obligor  # noqa: E402
-from debtsim.engines.sample import SampleEngine  # noqa: E402
-from debtsim.model import CreditModel  # noqa: E402
+from debtsim.book.records import Book, Link, Obligor  # noqa: E402
+from debtsim.engines.sample.engine import SampleEngine  # noqa: E402
+from debtsim.model.specification import LinkedFactorModel  # noqa: E402
 from debtsim.risk import expected_shortfall, value_at_risk  # noqa: E402
 
 BASELINE = "plain MC"
@@ -59,14 +59,14 @@ def build_book(n: int, links: int, seed: int = 7) -> Book:
     return Book(name=f"bench {n}/{links}", currency="EUR", obligors=obligors, links=lk)
 
 
-def timed(engine: SampleEngine, model: CreditModel):
+def timed(engine: SampleEngine, model: LinkedFactorModel):
     """Run ``engine`` on ``model``; return (law, wall seconds, process CPU seconds)."""
     t0, c0 = time.perf_counter(), time.process_time()
     law = engine.run(model)
     return law, time.perf_counter() - t0, time.process_time() - c0
 
 
-def variance_table(model: CreditModel, label: str, seeds: int, samples: int, workers: int) -> None:
+def variance_table(model: LinkedFactorModel, label: str, seeds: int, samples: int, workers: int) -> None:
     names = ("EL", "VaR 0.99", "ES 0.99", "VaR 0.999", "ES 0.999")
     results: dict[bool, np.ndarray] = {}
     seconds: dict[bool, float] = {}
@@ -97,7 +97,7 @@ def variance_table(model: CreditModel, label: str, seeds: int, samples: int, wor
               f"{ratio / cost:>9.1f}x")
 
 
-def speed_table(model: CreditModel, label: str, samples: int, workers: int) -> None:
+def speed_table(model: LinkedFactorModel, label: str, samples: int, workers: int) -> None:
     print(f"\n  {label}: {samples:,} scenarios, {workers} worker thread(s)")
     print(f"  {'method':<12} {'wall s':>8} {'CPU s':>8} {'scenarios/s':>12} "
           f"{'wall vs ' + BASELINE:>18}")
@@ -124,8 +124,8 @@ def main() -> None:
     print(f"debtsim sample engine benchmark ({os.cpu_count()} CPUs, load average {load:.1f} "
           f"at start; baseline: {BASELINE} = same engine, importance sampling off)")
 
-    plain_book = CreditModel.from_book(build_book(1000, 0))
-    linked_book = CreditModel.from_book(build_book(1000, 3000))
+    plain_book = LinkedFactorModel.from_book(build_book(1000, 0))
+    linked_book = LinkedFactorModel.from_book(build_book(1000, 3000))
     if "1" in args.sections:
         print("\n(1) importance-sampling variance reduction, 1,000-obligor heterogeneous book")
         print("    variance ratio = variance of plain MC estimates / variance of IS estimates; "
@@ -137,7 +137,7 @@ def main() -> None:
         speed_table(linked_book, "1,000 obligors, 3,000 links", args.big, args.workers)
     if "3" in args.sections:
         print("\n(3) speed, 20,000 obligors without links")
-        wide = CreditModel.from_book(build_book(20_000, 0, seed=8))
+        wide = LinkedFactorModel.from_book(build_book(20_000, 0, seed=8))
         speed_table(wide, "20,000 obligors", args.wide, args.workers)
 
 

@@ -22,9 +22,9 @@ from pathlib import Path
 
 import pandas as pd
 
-from debtsim.analysis import RunOptions
-from debtsim.schema import load_book
-from debtsim.sweep import Execution, GridAxis, run_sweep
+from debtsim.book.loader import load_book
+from debtsim.runner import RunOptions
+from debtsim.studies.sweep import Execution, GridAxis, run_sweep
 
 ROOT = Path(__file__).resolve().parent.parent
 

@@ -20,7 +20,7 @@ import typer
 from debtsim.errors import BookError, DebtsimError
 
 if TYPE_CHECKING:
-    from debtsim.analysis import RunOptions
+    from debtsim.runner import RunOptions
 
 __all__ = ["app", "main"]
 
@@ -82,7 +82,7 @@ def progress_bars(enabled: bool) -> Iterator[Callable[[str], Callable[[int, int]
 
 
 def _check_levels(levels: list[float] | None) -> tuple[float, ...]:
-    from debtsim.analysis import levels_from
+    from debtsim.runner import levels_from
 
     for a in levels or []:
         if not 0.0 < a < 1.0:
@@ -144,9 +144,9 @@ def run(
     quiet: QuietOpt = False,
 ) -> None:
     """Compute the loss law of BOOK and write the report folder."""
-    from debtsim.analysis import analyse
+    from debtsim.book.loader import load_book
     from debtsim.report import check_output_dir, write_run
-    from debtsim.schema import load_book
+    from debtsim.runner import analyse
 
     try:
         options = _run_options(engine, samples, seed, level, shots, copula)
@@ -164,7 +164,7 @@ def run(
 
 
 def _print_run(analysis: object, folder: Path) -> None:
-    from debtsim.analysis import Analysis
+    from debtsim.runner import Analysis
 
     assert isinstance(analysis, Analysis)
     m = analysis.measures
@@ -192,8 +192,8 @@ def _print_run(analysis: object, folder: Path) -> None:
 @app.command()
 def check(book: BookArg) -> None:
     """Validate BOOK and print a one-screen overview; writes nothing."""
-    from debtsim.overview import format_overview, overview
-    from debtsim.schema import load_book
+    from debtsim.book.loader import load_book
+    from debtsim.report.book_overview import format_overview, overview
 
     try:
         loaded = load_book(book)
@@ -215,15 +215,15 @@ def circuit(
     ] = False,
 ) -> None:
     """Print the size of BOOK's circuit (qubits, depth, two-qubit gates)."""
-    from debtsim.circuit import build_circuit, circuit_size, to_qasm3
-    from debtsim.model import CreditModel
-    from debtsim.schema import load_book
+    from debtsim.book.loader import load_book
+    from debtsim.engines.circuit.builder import build_circuit, circuit_size, to_qasm3
+    from debtsim.model.specification import LinkedFactorModel
 
     try:
         loaded = load_book(book)
         if qasm is not None and qasm.exists() and not force:
             raise DebtsimError(f"--qasm: {qasm} exists; pass --force to overwrite it")
-        model = CreditModel.from_book(loaded)
+        model = LinkedFactorModel.from_book(loaded)
         qc = build_circuit(model)
         size = circuit_size(qc)
         text = to_qasm3(qc) if qasm is not None else None
@@ -253,8 +253,8 @@ def _run_options(
     shots: int | None,
     copula: bool,
 ) -> RunOptions:
-    from debtsim.analysis import RunOptions
     from debtsim.engines import DEFAULT_SEED, ENGINE_NAMES
+    from debtsim.runner import RunOptions
 
     if engine not in ENGINE_NAMES:
         raise DebtsimError(f"--engine: must be one of {', '.join(ENGINE_NAMES)}, got {engine!r}")
@@ -286,11 +286,11 @@ def stress(
     quiet: QuietOpt = False,
 ) -> None:
     """Run BOOK and each scenario of SCENARIOS; write a side-by-side comparison."""
+    from debtsim.book.loader import load_book
     from debtsim.report.files import check_output_dir
-    from debtsim.scenarios import load_scenarios
-    from debtsim.schema import load_book
-    from debtsim.stress import run_stress, write_stress
-    from debtsim.sweep import Execution
+    from debtsim.studies.scenarios import load_scenarios
+    from debtsim.studies.stress import run_stress, write_stress
+    from debtsim.studies.sweep import Execution
 
     try:
         options = _run_options(engine, samples, seed, level, shots, copula)
@@ -364,8 +364,8 @@ def sweep(
     Every finished point is saved at once in OUT.partial/; an interrupted sweep
     continues with --resume. The copula is not computed.
     """
-    from debtsim.schema import load_book
-    from debtsim.sweep import Execution, parse_grid, partial_dir, run_sweep, write_sweep
+    from debtsim.book.loader import load_book
+    from debtsim.studies.sweep import Execution, parse_grid, partial_dir, run_sweep, write_sweep
 
     out_dir = out if out is not None else Path("reports") / f"{book.stem}-sweep"
     done = [0]

@@ -18,7 +18,7 @@ import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy.special import ndtri
 
-from debtsim.model import conditional_default_probability
+from debtsim.model.specification import conditional_default_probability
 
 __all__ = ["irb_capital", "irb_correlation", "irb_maturity_adjustment", "irb_risk_weight"]
 

@@ -1,4 +1,4 @@
-"""Engines computing the loss law of a :class:`~debtsim.model.CreditModel`.
+"""Engines computing the loss law of a :class:`~debtsim.model.specification.LinkedFactorModel`.
 
 ``circuit``: the entangling circuit on Aer's statevector simulator (small books).
 ``exact``: semi-analytic, conditional on factor nodes, exact per link component.
@@ -13,7 +13,7 @@ from dataclasses import dataclass
 
 from debtsim.engines.base import Engine, ProgressHook
 from debtsim.errors import EngineRefusedError
-from debtsim.model import CreditModel
+from debtsim.model.specification import LinkedFactorModel
 
 __all__ = [
     "ENGINE_NAMES",
@@ -66,11 +66,11 @@ class EngineChoice:
 def make_engine(name: str, settings: EngineSettings) -> Engine:
     """Construct the engine called ``name`` (not ``auto``) with ``settings``."""
     if name == "circuit":
-        from debtsim.engines.circuit import CircuitEngine
+        from debtsim.engines.circuit.engine import CircuitEngine
 
         return CircuitEngine(shots=settings.shots, seed=settings.seed)
     if name == "sample":
-        from debtsim.engines.sample import SampleEngine
+        from debtsim.engines.sample.engine import SampleEngine
 
         return SampleEngine(
             samples=settings.samples or DEFAULT_SAMPLES,
@@ -78,13 +78,13 @@ def make_engine(name: str, settings: EngineSettings) -> Engine:
             levels=tuple(settings.levels),
         )
     if name == "exact":
-        from debtsim.engines.exact import ExactEngine
+        from debtsim.engines.exact.engine import ExactEngine
 
         return ExactEngine()
     raise ValueError(f"unknown engine {name!r}; expected one of {', '.join(ENGINE_NAMES)}")
 
 
-def choose_engine(name: str, model: CreditModel, settings: EngineSettings) -> EngineChoice:
+def choose_engine(name: str, model: LinkedFactorModel, settings: EngineSettings) -> EngineChoice:
     """Resolve ``name`` (possibly ``auto``) to an engine able to run ``model``.
 
     ``auto`` takes ``exact`` whenever it applies, then ``circuit`` for books

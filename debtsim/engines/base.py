@@ -7,7 +7,7 @@ from collections.abc import Callable
 from typing import ClassVar
 
 from debtsim.distribution import LossDistribution
-from debtsim.model import CreditModel
+from debtsim.model.specification import LinkedFactorModel
 
 __all__ = ["Engine", "ProgressHook"]
 
@@ -26,7 +26,7 @@ class Engine(ABC):
     #: Name used on the command line and in outputs.
     name: ClassVar[str]
 
-    def refusal(self, model: CreditModel) -> str | None:
+    def refusal(self, model: LinkedFactorModel) -> str | None:
         """Why this engine cannot run ``model``, or None when it can.
 
         The message names a engine that can run the book where one exists.
@@ -34,7 +34,7 @@ class Engine(ABC):
         return None
 
     @abstractmethod
-    def run(self, model: CreditModel, *, progress: ProgressHook | None = None) -> LossDistribution:
+    def run(self, model: LinkedFactorModel, *, progress: ProgressHook | None = None) -> LossDistribution:
         """Compute the loss law of ``model``.
 
         Raises

@@ -1,8 +1,8 @@
 """Everything a run writes: ``summary.json``, the CSV files and ``report.html``.
 
 The report layer writes files and computes nothing: every number comes from
-the :class:`~debtsim.analysis.Analysis` (and the read-outs of
-:mod:`debtsim.contagion`).  Output folders are written atomically by
+the :class:`~debtsim.runner.Analysis` (and the read-outs of
+:mod:`debtsim.link_effects`).  Output folders are written atomically by
 :func:`atomic_output_dir`, which other writers (stress, sweep) reuse.
 """
 
@@ -11,7 +11,6 @@ from __future__ import annotations
 import datetime as _dt
 from pathlib import Path
 
-from debtsim.analysis import Analysis
 from debtsim.report.files import (
     GENERATOR_KEY,
     MARKER_FILE,
@@ -23,6 +22,7 @@ from debtsim.report.files import (
     write_loss_distribution,
 )
 from debtsim.report.summary import CAUTION, OBLIGOR_COLUMNS, obligor_rows, summary_dict
+from debtsim.runner import Analysis
 
 __all__ = [
     "CAUTION",

@@ -14,12 +14,12 @@ from typing import Any
 
 import numpy as np
 
-from debtsim.analysis import Analysis
-from debtsim.contagion import contagion_effect, obligor_contagion, rank_links
 from debtsim.distribution import LossDistribution
+from debtsim.link_effects import contagion_effect, obligor_contagion, rank_links
 from debtsim.report import charts
 from debtsim.report.files import generator
 from debtsim.report.summary import CAUTION
+from debtsim.runner import Analysis
 
 __all__ = ["BOOK_ROWS", "LINK_ROWS", "UPLIFT_BARS", "render_html"]
 

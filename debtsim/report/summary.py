@@ -4,11 +4,11 @@ from __future__ import annotations
 
 from typing import Any
 
-from debtsim.analysis import Analysis
-from debtsim.contagion import contagion_effect, obligor_contagion, rank_links
+from debtsim.book.loader import OBLIGOR_FIELDS
+from debtsim.link_effects import contagion_effect, obligor_contagion, rank_links
 from debtsim.report.files import GENERATOR_KEY, generator
 from debtsim.risk import level_key
-from debtsim.schema import OBLIGOR_FIELDS
+from debtsim.runner import Analysis
 
 __all__ = [
     "CAUTION",

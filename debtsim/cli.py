@@ -17,10 +17,10 @@ from typing import TYPE_CHECKING, Annotated
 
 import typer
 
-from debtsim.errors import BookError, DebtsimError
+from debtsim import BookError, DebtsimError, OptionError
 
 if TYPE_CHECKING:
-    from debtsim.runner import RunOptions
+    from debtsim import RunResult
 
 __all__ = ["app", "main"]
 
@@ -38,9 +38,19 @@ app = typer.Typer(
 EXIT_INPUT = 2
 
 
+#: Keyword option of the library -> the command-line flag that sets it.
+FLAGS = {"levels": "--level", "samples": "--samples", "seed": "--seed", "shots": "--shots",
+         "engine": "--engine", "workers": "--workers"}
+
+
 def fail(error: DebtsimError) -> None:
     """Print a debtsim error on stderr, one problem per line, and exit with status 2."""
-    lines = [str(p) for p in error.problems] if isinstance(error, BookError) else [str(error)]
+    if isinstance(error, OptionError):
+        lines = [f"{FLAGS.get(error.option, error.option)}: {error.message}"]
+    elif isinstance(error, BookError):
+        lines = [str(p) for p in error.problems]
+    else:
+        lines = [str(error)]
     for line in lines:
         typer.echo(f"error: {line}" if not isinstance(error, BookError) else line, err=True)
     raise typer.Exit(EXIT_INPUT)
@@ -81,15 +91,6 @@ def progress_bars(enabled: bool) -> Iterator[Callable[[str], Callable[[int, int]
         yield factory
 
 
-def _check_levels(levels: list[float] | None) -> tuple[float, ...]:
-    from debtsim.runner import levels_from
-
-    for a in levels or []:
-        if not 0.0 < a < 1.0:
-            raise DebtsimError(f"--level: must be between 0 and 1 (exclusive), got {a}")
-    return levels_from(levels)
-
-
 # ------------------------------------------------ options shared by run, stress and sweep
 BookArg = Annotated[Path, typer.Argument(help="Book file (YAML).")]
 EngineOpt = Annotated[str, typer.Option("--engine", help="auto, exact, circuit or sample.")]
@@ -107,8 +108,13 @@ ShotsOpt = Annotated[
         help="Circuit engine: sample N measurements instead of the exact statevector law.",
     ),
 ]
-CopulaOpt = Annotated[
-    bool, typer.Option("--copula/--no-copula", help="Also run the Gaussian copula.")
+CompareOpt = Annotated[
+    bool,
+    typer.Option(
+        "--compare-without-links/--no-compare-without-links",
+        help="Also run the same book without links (Gaussian copula), so the difference "
+        "is contagion alone.",
+    ),
 ]
 QuietOpt = Annotated[bool, typer.Option("--quiet", "-q", help="No progress, no summary.")]
 WorkersOpt = Annotated[
@@ -140,50 +146,48 @@ def run(
     seed: Annotated[int | None, typer.Option("--seed", help="Seed for random draws.")] = None,
     level: LevelOpt = None,
     shots: ShotsOpt = None,
-    copula: CopulaOpt = True,
+    compare_without_links: CompareOpt = True,
     quiet: QuietOpt = False,
 ) -> None:
-    """Compute the loss law of BOOK and write the report folder."""
-    from debtsim.book.loader import load_book
-    from debtsim.report import check_output_dir, write_run
-    from debtsim.runner import analyse
+    """Compute the loss distribution of BOOK and write the report folder."""
+    import debtsim
 
     try:
-        options = _run_options(engine, samples, seed, level, shots, copula)
-        loaded = load_book(book)
+        loaded = debtsim.load_book(book)
         out_dir = out if out is not None else Path("reports") / book.stem
-        check_output_dir(out_dir)
+        debtsim.check_output_dir(out_dir)
         with progress_bars(not quiet) as progress:
-            analysis = analyse(loaded, options, progress=progress)
-        final = write_run(analysis, out_dir)
-    except DebtsimError as error:
+            result = debtsim.run(
+                loaded, engine=engine, levels=level or debtsim.DEFAULT_LEVELS,
+                samples=samples, seed=debtsim.DEFAULT_SEED if seed is None else seed,
+                shots=shots, copula=compare_without_links, progress=progress,
+            )
+        final = result.write(out_dir)
+    except debtsim.DebtsimError as error:
         fail(error)
         return
     if not quiet:
-        _print_run(analysis, final)
+        _print_run(result, final)
 
 
-def _print_run(analysis: object, folder: Path) -> None:
-    from debtsim.runner import Analysis
-
-    assert isinstance(analysis, Analysis)
-    m = analysis.measures
-    cur = analysis.book.currency
+def _print_run(result: RunResult, folder: Path) -> None:
+    m = result.measures
+    cur = result.book.currency
     lines = [
-        f"{analysis.book.name}: {analysis.model.n_obligors} obligors, "
-        f"{analysis.model.n_links} links, engine {analysis.engine} ({analysis.engine_reason})",
+        f"{result.book.name}: {result.model.n_obligors} obligors, "
+        f"{result.model.n_links} links, engine {result.engine} ({result.engine_reason})",
         f"  expected loss      {m.expected_loss:,.2f} {cur}",
         f"  loss std           {m.loss_std:,.2f} {cur}",
     ]
-    for key in m.var:
+    for a in m.levels:
         lines.append(
-            f"  VaR {key:<7}        {m.var[key]:,.2f} {cur}   ES {m.expected_shortfall[key]:,.2f}"
+            f"  VaR {a!s:<7}        {m.var[a]:,.2f} {cur}   ES {m.expected_shortfall[a]:,.2f}"
         )
-    if analysis.copula_measures is not None:
-        c = analysis.copula_measures
-        lines.append(f"  copula EL          {c.expected_loss:,.2f} {cur}")
-        for key in c.var:
-            lines.append(f"  copula VaR {key:<7} {c.var[key]:,.2f} {cur}")
+    if result.copula_measures is not None:
+        c = result.copula_measures
+        lines.append(f"  without links (Gaussian copula): EL {c.expected_loss:,.2f} {cur}")
+        for a in c.levels:
+            lines.append(f"    VaR {a!s:<7}        {c.var[a]:,.2f} {cur}")
     lines.append(f"report: {folder / 'report.html'}")
     lines.append("Model estimates only: not investment or regulatory advice.")
     typer.echo("\n".join(lines))
@@ -192,12 +196,10 @@ def _print_run(analysis: object, folder: Path) -> None:
 @app.command()
 def check(book: BookArg) -> None:
     """Validate BOOK and print a one-screen overview; writes nothing."""
-    from debtsim.book.loader import load_book
-    from debtsim.report.book_overview import format_overview, overview
+    import debtsim
 
     try:
-        loaded = load_book(book)
-        text = format_overview(overview(loaded))
+        text = debtsim.describe_book(debtsim.load_book(book))
     except DebtsimError as error:
         fail(error)
         return
@@ -215,27 +217,29 @@ def circuit(
     ] = False,
 ) -> None:
     """Print the size of BOOK's circuit (qubits, depth, two-qubit gates)."""
-    from debtsim.book.loader import load_book
-    from debtsim.engines.circuit.builder import build_circuit, circuit_size, to_qasm3
-    from debtsim.model.specification import LinkedFactorModel
+    import debtsim
 
     try:
-        loaded = load_book(book)
+        loaded = debtsim.load_book(book)
         if qasm is not None and qasm.exists() and not force:
             raise DebtsimError(f"--qasm: {qasm} exists; pass --force to overwrite it")
-        model = LinkedFactorModel.from_book(loaded)
-        qc = build_circuit(model)
-        size = circuit_size(qc)
-        text = to_qasm3(qc) if qasm is not None else None
+        report = debtsim.circuit_report(loaded)
+        text = report.qasm() if qasm is not None else None
     except DebtsimError as error:
         fail(error)
         return
+    verdict = (
+        "runs on --engine circuit"
+        if report.refusal is None
+        else f"--engine circuit would refuse this book: {report.refusal}"
+    )
     typer.echo(
-        f"qubits            {size.qubits} ({model.factor_qubits} factor + "
-        f"{model.n_obligors} obligor)\n"
-        f"depth             {size.depth}\n"
-        f"two-qubit gates   {size.two_qubit_gates}\n"
-        f"(after transpiling to u/cx)"
+        f"qubits            {report.qubits} ({report.factor_qubits} factor + "
+        f"{report.obligors} obligor)\n"
+        f"depth             {report.depth}\n"
+        f"two-qubit gates   {report.two_qubit_gates}\n"
+        f"(after transpiling to u/cx)\n"
+        f"{verdict}"
     )
     if qasm is not None and text is not None:
         tmp = qasm.with_name(f".{qasm.name}.tmp")
@@ -245,31 +249,6 @@ def circuit(
 
 
 # --------------------------------------------------------- stress and sweep
-def _run_options(
-    engine: str,
-    samples: int | None,
-    seed: int | None,
-    level: list[float] | None,
-    shots: int | None,
-    copula: bool,
-) -> RunOptions:
-    from debtsim.engines import DEFAULT_SEED, ENGINE_NAMES
-    from debtsim.runner import RunOptions
-
-    if engine not in ENGINE_NAMES:
-        raise DebtsimError(f"--engine: must be one of {', '.join(ENGINE_NAMES)}, got {engine!r}")
-    return RunOptions(
-        engine=engine,
-        samples=samples,
-        seed=DEFAULT_SEED if seed is None else seed,
-        shots=shots,
-        levels=_check_levels(level),
-        copula=copula,
-    )
-
-
-
-
 @app.command()
 def stress(
     book: BookArg,
@@ -280,31 +259,27 @@ def stress(
     seed: Annotated[int | None, typer.Option("--seed", help="Seed for random draws.")] = None,
     level: LevelOpt = None,
     shots: ShotsOpt = None,
-    copula: CopulaOpt = True,
+    compare_without_links: CompareOpt = True,
     workers: WorkersOpt = None,
     scheduler: SchedulerOpt = None,
     quiet: QuietOpt = False,
 ) -> None:
     """Run BOOK and each scenario of SCENARIOS; write a side-by-side comparison."""
-    from debtsim.book.loader import load_book
-    from debtsim.report.files import check_output_dir
-    from debtsim.studies.scenarios import load_scenarios
-    from debtsim.studies.stress import run_stress, write_stress
-    from debtsim.studies.sweep import Execution
+    import debtsim
 
     try:
-        options = _run_options(engine, samples, seed, level, shots, copula)
-        execution = Execution(workers=workers, scheduler=scheduler)
-        loaded = load_book(book)
-        scenario_list = load_scenarios(scenarios, loaded)
+        loaded = debtsim.load_book(book)
+        scenario_list = debtsim.load_scenarios(scenarios, loaded)
         out_dir = out if out is not None else Path("reports") / f"{book.stem}-stress"
-        check_output_dir(out_dir)
+        debtsim.check_output_dir(out_dir)
         with progress_bars(not quiet) as progress:
-            result = run_stress(
-                loaded, scenario_list, options, execution=execution,
-                progress=progress("scenarios"),
+            result = debtsim.stress(
+                loaded, scenario_list, engine=engine, levels=level or debtsim.DEFAULT_LEVELS,
+                samples=samples, seed=debtsim.DEFAULT_SEED if seed is None else seed,
+                shots=shots, copula=compare_without_links, workers=workers,
+                scheduler=scheduler, progress=progress("scenarios"),
             )
-        final = write_stress(result, out_dir, source=str(scenarios))
+        final = debtsim.write_stress(result, out_dir, source=str(scenarios))
     except DebtsimError as error:
         fail(error)
         return
@@ -362,32 +337,38 @@ def sweep(
     """Run BOOK over a grid of scenario parameters; write sweep.csv, sweep.parquet and charts.
 
     Every finished point is saved at once in OUT.partial/; an interrupted sweep
-    continues with --resume. The copula is not computed.
+    continues with --resume. The comparison without links is not computed.
     """
-    from debtsim.book.loader import load_book
-    from debtsim.studies.sweep import Execution, parse_grid, partial_dir, run_sweep, write_sweep
+    import debtsim
 
     out_dir = out if out is not None else Path("reports") / f"{book.stem}-sweep"
     done = [0]
     try:
-        options = _run_options(engine, samples, seed, level, shots, False)
-        execution = Execution(workers=workers, scheduler=scheduler)
-        axes = parse_grid(grid or [])
-        loaded = load_book(book)
+        axes = debtsim.grid_from_options(grid or [])
+        loaded = debtsim.load_book(book)
         with progress_bars(not quiet) as progress:
-            result = run_sweep(
-                loaded, axes, options, out_dir,
-                execution=execution, resume=resume, progress=progress("grid points"),
-                on_point=lambda _record: done.__setitem__(0, done[0] + 1),
+            hook = progress("grid points")
+
+            def count(finished: int, total: int) -> None:
+                done[0] = finished
+                if hook is not None:
+                    hook(finished, total)
+
+            table = debtsim.sweep(
+                loaded, axes, engine=engine, levels=level or debtsim.DEFAULT_LEVELS,
+                samples=samples, seed=debtsim.DEFAULT_SEED if seed is None else seed,
+                shots=shots, workers=workers, scheduler=scheduler, out=out_dir,
+                resume=resume, progress=count,
             )
-        final = write_sweep(result, out_dir)
+        info = table.attrs["sweep"]
+        final = Path(info["folder"])
     except DebtsimError as error:
         fail(error)
         return
     except KeyboardInterrupt:
         typer.echo(
-            f"interrupted: the points finished so far ({done[0]} this run) are kept in "
-            f"{partial_dir(out_dir)}; "
+            f"interrupted: the points finished so far ({done[0]} of the grid) are kept in "
+            f"{debtsim.partial_dir(out_dir)}; "
             "run the same command with --resume to finish the rest",
             err=True,
         )
@@ -395,12 +376,12 @@ def sweep(
     if quiet:
         return
     lines = [
-        f"{loaded.name}: {len(result.table)} grid points, {result.computed} computed "
-        f"({result.execution}), {result.reused} reused, {result.failed} failed, "
-        f"{result.seconds:.1f} s",
+        f"{loaded.name}: {len(table)} grid points, {info['computed']} computed "
+        f"({info['execution']}), {info['reused']} reused, {info['failed']} failed, "
+        f"{info['seconds']:.1f} s",
     ]
-    if result.failed:
-        first = result.table.loc[result.table["status"] != "ok", "error"].iloc[0]
+    if info["failed"]:
+        first = table.loc[table["status"] != "ok", "error"].iloc[0]
         lines.append(f"  first failure: {first}")
     lines.append(f"table: {final / 'sweep.csv'}   report: {final / 'report.html'}")
     lines.append("Model estimates only: not investment or regulatory advice.")

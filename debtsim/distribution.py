@@ -8,11 +8,13 @@ from types import MappingProxyType
 from typing import Any
 
 import numpy as np
+import pandas as pd
 from numpy.typing import NDArray
+
+from debtsim._typing import FloatArray
 
 __all__ = ["LossDistribution"]
 
-FloatArray = NDArray[np.float64]
 
 
 def _frozen(a: NDArray[Any]) -> FloatArray:
@@ -149,3 +151,13 @@ class LossDistribution:
         """Standard deviation of the law."""
         m = self.mean
         return float(np.sqrt(max(np.dot((self.losses - m) ** 2, self.probabilities), 0.0)))
+
+    def to_frame(self) -> pd.DataFrame:
+        """Return the distribution as a DataFrame with columns ``loss, probability``.
+
+        Ascending losses, as in ``loss_distribution.csv`` (atoms of probability
+        exactly 0 are kept here).
+        """
+        return pd.DataFrame(
+            {"loss": np.array(self.losses), "probability": np.array(self.probabilities)}
+        )

@@ -5,6 +5,7 @@ Hierarchy::
     DebtsimError                 root: the CLI catches this and exits with status 2
     ├── BookError                the book (or a scenario file) is invalid; carries every problem
     ├── EngineRefusedError       an engine cannot run this book (too large, wrong shape)
+    ├── OptionError              an option of a run is out of range (also a ValueError)
     └── OutputError              an output folder cannot be written (exists, not ours)
 
     DebtsimWarning               root of the domain warnings
@@ -21,6 +22,7 @@ __all__ = [
     "DebtsimWarning",
     "DiscretisationWarning",
     "EngineRefusedError",
+    "OptionError",
     "OutputError",
     "Problem",
 ]
@@ -28,6 +30,24 @@ __all__ = [
 
 class DebtsimError(Exception):
     """Root of every error debtsim raises on purpose."""
+
+
+class OptionError(DebtsimError, ValueError):
+    """An option of a run (engine, samples, seed, shots, levels...) is out of range.
+
+    Parameters
+    ----------
+    option : str
+        The option's name as a keyword argument (``levels``); the command
+        line shows it as ``--level`` style flags.
+    message : str
+        What was expected and what was received.
+    """
+
+    def __init__(self, option: str, message: str) -> None:
+        super().__init__(f"{option}: {message}")
+        self.option = option
+        self.message = message
 
 
 @dataclass(frozen=True)

@@ -21,11 +21,13 @@ copula's expected loss).
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass
 
 import numpy as np
-from numpy.typing import ArrayLike, NDArray
+from numpy.typing import ArrayLike
 
+from debtsim._typing import FloatArray
 from debtsim.book.records import Book
 from debtsim.risk import RiskMeasures
 
@@ -38,7 +40,6 @@ __all__ = [
     "rank_links",
 ]
 
-FloatArray = NDArray[np.float64]
 
 
 @dataclass(frozen=True)
@@ -225,7 +226,8 @@ def contagion_effect(
     -------
     dict
         ``expected_loss_from_contagion`` (model EL minus copula EL),
-        ``expected_loss_ratio`` (model EL / copula EL, None when the copula EL
+        ``expected_loss_with_links_multiple`` (EL with links divided by EL without
+        links, None when the latter
         is 0), ``loss_std_from_contagion`` and ``var_from_contagion``,
         ``expected_shortfall_from_contagion``,
         ``economic_capital_from_contagion`` keyed by level.  Every value is
@@ -234,23 +236,23 @@ def contagion_effect(
     """
     keys = list(model.var)
     if copula is None:
-        none_by_level: dict[str, float | None] = dict.fromkeys(keys)
+        none_by_level: dict[float, float | None] = dict.fromkeys(keys)
         return {
             "expected_loss_from_contagion": None,
-            "expected_loss_ratio": None,
+            "expected_loss_with_links_multiple": None,
             "loss_std_from_contagion": None,
             "var_from_contagion": dict(none_by_level),
             "expected_shortfall_from_contagion": dict(none_by_level),
             "economic_capital_from_contagion": dict(none_by_level),
         }
 
-    def diff(a: dict[str, float], b: dict[str, float]) -> dict[str, float | None]:
+    def diff(a: Mapping[float, float], b: Mapping[float, float]) -> dict[float, float | None]:
         return {k: (a[k] - b[k]) if k in b else None for k in keys}
 
     ratio = model.expected_loss / copula.expected_loss if copula.expected_loss > 0 else None
     return {
         "expected_loss_from_contagion": model.expected_loss - copula.expected_loss,
-        "expected_loss_ratio": ratio,
+        "expected_loss_with_links_multiple": ratio,
         "loss_std_from_contagion": model.loss_std - copula.loss_std,
         "var_from_contagion": diff(model.var, copula.var),
         "expected_shortfall_from_contagion": diff(

@@ -1,82 +1,74 @@
-"""One analysis of a book: choose an engine, compute the law, measure the risk.
+"""The run step: choose an engine, compute the loss distribution, measure the risk.
 
-Data flows one way: book -> model -> engine -> risk.  Reports are written
-elsewhere (:mod:`debtsim.report`) from the :class:`Analysis` this returns.
+Data flows one way: book -> model -> engine -> risk.  The result,
+:class:`RunResult`, holds everything a report needs; writing it is the
+report layer's job (:meth:`RunResult.write` hands it over).
 """
 
 from __future__ import annotations
 
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
+from functools import cached_property
+from pathlib import Path
+from typing import Any
 
+import numpy as np
+import pandas as pd
+
+from debtsim.book.loader import OBLIGOR_FIELDS
 from debtsim.book.records import Book
 from debtsim.distribution import LossDistribution
-from debtsim.engines import DEFAULT_SEED, EngineSettings, ProgressHook, choose_engine
+from debtsim.engines import ProgressHook, choose_engine
+from debtsim.link_effects import obligor_contagion
 from debtsim.model.specification import LinkedFactorModel
+from debtsim.options import RunOptions
 from debtsim.risk import RiskMeasures, measures
 
-__all__ = ["DEFAULT_LEVELS", "Analysis", "RunOptions", "analyse"]
-
-DEFAULT_LEVELS: tuple[float, ...] = (0.99, 0.999)
+__all__ = ["OBLIGOR_COLUMNS", "ProgressFactory", "RunResult", "run_book"]
 
 #: Makes a progress hook for a named stage ("model", "copula"); may return None.
 ProgressFactory = Callable[[str], ProgressHook | None]
 
+#: Columns of ``obligors.csv`` and :attr:`RunResult.obligors`: the book's fields, the
+#: contract's two results, then the contagion uplift and (sampled runs) its error.
+OBLIGOR_COLUMNS: tuple[str, ...] = (
+    *OBLIGOR_FIELDS,
+    "default_probability",
+    "expected_loss",
+    "contagion_uplift",
+    "default_probability_standard_error",
+)
 
-@dataclass(frozen=True)
-class RunOptions:
-    """What the user asked of a run.
-
-    Attributes
-    ----------
-    engine : str
-        ``auto``, ``exact``, ``circuit`` or ``sample``.
-    samples : int or None
-        Scenario count for sampling engines.
-    seed : int
-        Seed for every random draw.
-    shots : int or None
-        Shots for the circuit engine; None gives its exact statevector law.
-    levels : tuple of float
-        Confidence levels for VaR, ES and economic capital.
-    copula : bool
-        Also compute the one-factor Gaussian copula (same book, links removed).
-    """
-
-    engine: str = "auto"
-    samples: int | None = None
-    seed: int = DEFAULT_SEED
-    shots: int | None = None
-    levels: tuple[float, ...] = DEFAULT_LEVELS
-    copula: bool = True
-
-    @property
-    def engine_settings(self) -> EngineSettings:
-        """The settings engines read."""
-        return EngineSettings(
-            samples=self.samples, seed=self.seed, shots=self.shots, levels=self.levels
-        )
+#: Above this relative PD error of the circuit's factor nodes, the run carries a note.
+NODE_ERROR_NOTE = 0.01
 
 
 @dataclass(frozen=True, eq=False)
-class Analysis:
-    """Everything a report needs from one run.
+class RunResult:
+    """One finished run of a book.
 
     Attributes
     ----------
     book : Book
+        The book as loaded.
     model : LinkedFactorModel
+        The model built from it.
     options : RunOptions
+        What was asked.
     engine : str
         Name of the engine that ran.
     engine_reason : str
         Why it was chosen.
-    distribution : LossDistribution
-        Loss law with contagion.
+    loss_distribution : LossDistribution
+        Loss distribution with contagion; ``.to_frame()`` gives
+        ``loss, probability``.
     measures : RiskMeasures
-    copula_distribution : LossDistribution or None
-        Loss law of the same book without links.
-    copula_measures : RiskMeasures or None
+        EL, loss std, and VaR, ES, economic capital keyed by float level.
+    copula_distribution, copula_measures : LossDistribution, RiskMeasures or None
+        The same book without links (Gaussian copula); None when not asked.
+    notes : tuple of str
+        Model warnings for the reader (e.g. coarse factor nodes).
     """
 
     book: Book
@@ -84,40 +76,66 @@ class Analysis:
     options: RunOptions
     engine: str
     engine_reason: str
-    distribution: LossDistribution
+    loss_distribution: LossDistribution
     measures: RiskMeasures
     copula_distribution: LossDistribution | None = None
     copula_measures: RiskMeasures | None = None
     notes: tuple[str, ...] = field(default=())
 
+    @property
+    def diagnostics(self) -> Mapping[str, Any]:
+        """Error estimates and checks of the engine that ran (read-only)."""
+        return self.loss_distribution.diagnostics
 
-def _copula_law(
-    model: LinkedFactorModel, engine: str, options: RunOptions, progress: ProgressHook | None
-) -> LossDistribution:
-    """Loss law of the book read without links, computed like the main law.
+    @cached_property
+    def obligors(self) -> pd.DataFrame:
+        """One row per obligor in book order, the columns of ``obligors.csv``."""
+        return obligor_table(self.book, self.loss_distribution)
 
-    The copula uses the same discretisation as the engine that ran, so that
-    the difference between the two laws is contagion and nothing else: the
-    circuit's Gauss–Hermite nodes for ``circuit`` (computed exactly on those
-    nodes), the same sampler and seed for ``sample`` (common random numbers),
-    and the exact engine's own grid otherwise.
+    def write(self, out_dir: Path | str) -> Path:
+        """Write ``summary.json``, the CSV files and ``report.html`` into ``out_dir``.
+
+        Exactly the files ``debtsim run`` writes, atomically: an existing
+        folder is replaced only when it is a previous debtsim output.
+
+        Raises
+        ------
+        OutputError
+            When ``out_dir`` cannot be written; nothing there is changed then.
+        """
+        from debtsim.report import write_run
+
+        return write_run(self, out_dir)
+
+
+def obligor_table(book: Book, dist: LossDistribution) -> pd.DataFrame:
+    """Per-obligor results in book order, columns :data:`OBLIGOR_COLUMNS`.
+
+    ``default_probability_standard_error`` is NaN where the distribution is
+    exact.
     """
-    plain = model.without_links()
-    if engine == "circuit":
-        from debtsim.engines.exact.engine import ExactEngine
-        from debtsim.model.factor_grid import gauss_hermite
+    oc = obligor_contagion(book, dist.default_probability)
+    errors = dist.diagnostics.get("default_probability_standard_error")
+    n = len(book.obligors)
+    data: dict[str, Any] = {
+        name: [getattr(o, name) for o in book.obligors] for name in OBLIGOR_FIELDS
+    }
+    for name in ("ead", "pd", "lgd", "asset_correlation"):
+        data[name] = np.asarray(data[name], dtype=float)
+    data["default_probability"] = np.asarray(oc.default_probability, dtype=float)
+    data["expected_loss"] = np.asarray(oc.expected_loss, dtype=float)
+    data["contagion_uplift"] = np.asarray(oc.contagion_uplift, dtype=float)
+    data["default_probability_standard_error"] = (
+        np.full(n, np.nan) if errors is None else np.asarray(errors, dtype=float)
+    )
+    return pd.DataFrame(data, columns=list(OBLIGOR_COLUMNS))
 
-        exact_on_nodes = ExactEngine(factor_grid=gauss_hermite(2**model.factor_qubits))
-        return exact_on_nodes.run(plain, progress=progress)
-    choice = choose_engine(engine, plain, options.engine_settings)
-    return choice.engine.run(plain, progress=progress)
 
-
-def analyse(
+def run_book(
     book: Book,
     options: RunOptions | None = None,
     progress: ProgressFactory | None = None,
-) -> Analysis:
+) -> RunResult:
     """Run the model of ``book`` and measure its risk.
 
     Parameters
@@ -131,7 +149,7 @@ def analyse(
 
     Returns
     -------
-    Analysis
+    RunResult
 
     Raises
     ------
@@ -140,36 +158,33 @@ def analyse(
     """
     options = options or RunOptions()
     model = LinkedFactorModel.from_book(book)
-    choice = choose_engine(options.engine, model, options.engine_settings)
-    hook = progress("model") if progress else None
-    dist = choice.engine.run(model, progress=hook)
-    result_measures = measures(dist, options.levels)
+    choice = choose_engine(options.engine, model, options)
+    dist = choice.engine.run(model, progress=progress("model") if progress else None)
     copula_dist = copula_measures = None
     if options.copula:
-        copula_dist = _copula_law(
-            model, choice.engine.name, options, progress("copula") if progress else None
-        )
+        if model.n_links == 0:
+            copula_dist = dist  # without links the book is its own comparison
+        else:
+            copula_dist = choice.engine.run_without_links(
+                model, progress=progress("copula") if progress else None
+            )
         copula_measures = measures(copula_dist, options.levels)
-    return Analysis(
-        notes=_notes(dist),
+    return RunResult(
         book=book,
         model=model,
         options=options,
         engine=choice.engine.name,
         engine_reason=choice.reason,
-        distribution=dist,
-        measures=result_measures,
+        loss_distribution=dist,
+        measures=measures(dist, options.levels),
         copula_distribution=copula_dist,
         copula_measures=copula_measures,
+        notes=model_notes(dist),
     )
 
 
-#: Above this relative PD error of the circuit's factor nodes, the run carries a note.
-NODE_ERROR_NOTE = 0.01
-
-
-def _notes(dist: LossDistribution) -> tuple[str, ...]:
-    """Warnings for the reader that the law's own diagnostics call for."""
+def model_notes(dist: LossDistribution) -> tuple[str, ...]:
+    """Warnings for the reader that the distribution's own diagnostics call for."""
     notes = []
     node_error = float(dist.diagnostics.get("factor_node_pd_error", 0.0))
     if node_error > NODE_ERROR_NOTE:
@@ -178,13 +193,6 @@ def _notes(dist: LossDistribution) -> tuple[str, ...]:
             f"The circuit's {nodes} factor nodes reproduce an obligor's PD only to within "
             f"{node_error:.1%} (high asset correlation makes the conditional PD nearly a step); "
             "raise model.factor_qubits or use the exact engine, which places its nodes where "
-            "the conditional law moves."
+            "the conditional distribution moves."
         )
     return tuple(notes)
-
-
-def levels_from(values: Sequence[float] | None) -> tuple[float, ...]:
-    """Sorted unique confidence levels, or the defaults when none are given."""
-    if not values:
-        return DEFAULT_LEVELS
-    return tuple(sorted({float(v) for v in values}))

@@ -72,9 +72,10 @@ def test_measures_keys_use_str_float() -> None:
     """Levels are keyed as str(float), economic capital is VaR minus EL."""
     d = law([0, 10, 100], [0.95, 0.04, 0.01])
     m = measures(d, [0.99, 0.999])
-    assert set(m.var) == {"0.99", "0.999"} == {level_key(0.99), level_key(0.999)}
+    assert set(m.var) == {0.99, 0.999}
+    assert m.to_dict()["var"].keys() == {"0.99", "0.999"} == {level_key(0.99), level_key(0.999)}
     assert m.expected_loss == pytest.approx(1.4)
-    assert m.economic_capital["0.99"] == pytest.approx(10 - 1.4)
+    assert m.economic_capital[0.99] == pytest.approx(10 - 1.4)
 
 
 def test_level_outside_unit_interval_is_refused() -> None:

@@ -8,52 +8,23 @@
 
 from __future__ import annotations
 
-from collections.abc import Sequence
 from dataclasses import dataclass
 
 from debtsim.engines.base import Engine, ProgressHook
 from debtsim.errors import EngineRefusedError
 from debtsim.model.specification import LinkedFactorModel
+from debtsim.options import DEFAULT_SAMPLES, DEFAULT_SEED, ENGINE_NAMES, RunOptions
 
 __all__ = [
+    "DEFAULT_SAMPLES",
+    "DEFAULT_SEED",
     "ENGINE_NAMES",
     "Engine",
     "EngineChoice",
-    "EngineSettings",
     "ProgressHook",
     "choose_engine",
     "make_engine",
 ]
-
-ENGINE_NAMES = ("auto", "exact", "circuit", "sample")
-
-#: Default scenario count of the ``sample`` engine.
-DEFAULT_SAMPLES = 200_000
-#: Default seed: runs are reproducible unless the user asks for another seed.
-DEFAULT_SEED = 20_261_202
-
-
-@dataclass(frozen=True)
-class EngineSettings:
-    """Options from the command line that engines may use.
-
-    Attributes
-    ----------
-    samples : int or None
-        Scenario count for ``sample``; None means the engine's default.
-    seed : int
-        Seed for every random draw.
-    shots : int or None
-        Measurement shots for ``circuit``; None means the exact statevector law.
-    levels : tuple of float
-        Confidence levels the user asked for (tail sampling aims at them).
-    """
-
-    samples: int | None = None
-    seed: int = DEFAULT_SEED
-    shots: int | None = None
-    levels: Sequence[float] = (0.99, 0.999)
-
 
 @dataclass(frozen=True)
 class EngineChoice:
@@ -63,19 +34,19 @@ class EngineChoice:
     reason: str
 
 
-def make_engine(name: str, settings: EngineSettings) -> Engine:
-    """Construct the engine called ``name`` (not ``auto``) with ``settings``."""
+def make_engine(name: str, options: RunOptions) -> Engine:
+    """Construct the engine called ``name`` (not ``auto``) with the run's ``options``."""
     if name == "circuit":
         from debtsim.engines.circuit.engine import CircuitEngine
 
-        return CircuitEngine(shots=settings.shots, seed=settings.seed)
+        return CircuitEngine(shots=options.shots, seed=options.seed)
     if name == "sample":
         from debtsim.engines.sample.engine import SampleEngine
 
         return SampleEngine(
-            samples=settings.samples or DEFAULT_SAMPLES,
-            seed=settings.seed,
-            levels=tuple(settings.levels),
+            samples=options.sample_count,
+            seed=options.seed,
+            levels=tuple(options.levels),
         )
     if name == "exact":
         from debtsim.engines.exact.engine import ExactEngine
@@ -84,7 +55,7 @@ def make_engine(name: str, settings: EngineSettings) -> Engine:
     raise ValueError(f"unknown engine {name!r}; expected one of {', '.join(ENGINE_NAMES)}")
 
 
-def choose_engine(name: str, model: LinkedFactorModel, settings: EngineSettings) -> EngineChoice:
+def choose_engine(name: str, model: LinkedFactorModel, options: RunOptions) -> EngineChoice:
     """Resolve ``name`` (possibly ``auto``) to an engine able to run ``model``.
 
     ``auto`` takes ``exact`` whenever it applies, then ``circuit`` for books
@@ -96,14 +67,14 @@ def choose_engine(name: str, model: LinkedFactorModel, settings: EngineSettings)
         When a named engine cannot run the model; the message says which can.
     """
     if name != "auto":
-        engine = make_engine(name, settings)
+        engine = make_engine(name, options)
         reason = engine.refusal(model)
         if reason is not None:
             raise EngineRefusedError(reason)
         return EngineChoice(engine, f"requested with --engine {name}")
     refusals: list[str] = []
     for candidate in ("exact", "circuit", "sample"):
-        engine = make_engine(candidate, settings)
+        engine = make_engine(candidate, options)
         reason = engine.refusal(model)
         if reason is None:
             why = {

@@ -34,7 +34,9 @@ class Engine(ABC):
         return None
 
     @abstractmethod
-    def run(self, model: LinkedFactorModel, *, progress: ProgressHook | None = None) -> LossDistribution:
+    def run(
+        self, model: LinkedFactorModel, *, progress: ProgressHook | None = None
+    ) -> LossDistribution:
         """Compute the loss law of ``model``.
 
         Raises
@@ -42,3 +44,16 @@ class Engine(ABC):
         EngineRefusedError
             When :meth:`refusal` gives a reason.
         """
+
+    def run_without_links(
+        self, model: LinkedFactorModel, *, progress: ProgressHook | None = None
+    ) -> LossDistribution:
+        """Loss distribution of ``model`` read without links, discretised as :meth:`run` does.
+
+        The comparison "without links (Gaussian copula)" must differ from the
+        main distribution by contagion alone, so it uses this engine's own
+        discretisation: the same factor nodes, or the same sampler and seed
+        (common random numbers).  An engine whose own method does not suit
+        the comparison overrides this.
+        """
+        return self.run(model.without_links(), progress=progress)

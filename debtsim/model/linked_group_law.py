@@ -25,11 +25,11 @@ from __future__ import annotations
 from collections.abc import Sequence
 
 import numpy as np
-from numpy.typing import NDArray
+
+from debtsim._typing import FloatArray
 
 __all__ = ["MAX_GROUP_SIZE", "group_law", "seed_probability"]
 
-FloatArray = NDArray[np.float64]
 
 #: Largest strongly connected group handled exactly (3^14 ~ 4.8 million subset pairs).
 MAX_GROUP_SIZE = 14

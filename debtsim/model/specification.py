@@ -20,11 +20,11 @@ from scipy import sparse
 from scipy.sparse.csgraph import connected_components
 from scipy.special import ndtr, ndtri
 
+from debtsim._typing import FloatArray
 from debtsim.book.records import Book
 
 __all__ = ["LinkedFactorModel", "conditional_default_probability"]
 
-FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
 
 

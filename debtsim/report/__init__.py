@@ -1,7 +1,7 @@
 """Everything a run writes: ``summary.json``, the CSV files and ``report.html``.
 
 The report layer writes files and computes nothing: every number comes from
-the :class:`~debtsim.runner.Analysis` (and the read-outs of
+the :class:`~debtsim.runner.RunResult` (and the read-outs of
 :mod:`debtsim.link_effects`).  Output folders are written atomically by
 :func:`atomic_output_dir`, which other writers (stress, sweep) reuse.
 """
@@ -11,7 +11,7 @@ from __future__ import annotations
 import datetime as _dt
 from pathlib import Path
 
-from debtsim.report.files import (
+from debtsim.output_files import (
     GENERATOR_KEY,
     MARKER_FILE,
     atomic_output_dir,
@@ -21,8 +21,8 @@ from debtsim.report.files import (
     write_json,
     write_loss_distribution,
 )
-from debtsim.report.summary import CAUTION, OBLIGOR_COLUMNS, obligor_rows, summary_dict
-from debtsim.runner import Analysis
+from debtsim.report.run_view import RunView
+from debtsim.report.summary import CAUTION, summary_dict
 
 __all__ = [
     "CAUTION",
@@ -41,13 +41,13 @@ OUTPUT_FILES = ("summary.json", "loss_distribution.csv", "obligors.csv", "report
 
 
 def write_run(
-    analysis: Analysis, out_dir: Path | str, *, created: _dt.datetime | None = None
+    analysis: RunView, out_dir: Path | str, *, created: _dt.datetime | None = None
 ) -> Path:
     """Write the outputs of a run into ``out_dir``, atomically.
 
     Parameters
     ----------
-    analysis : Analysis
+    analysis : RunView
         The finished run.
     out_dir : Path or str
         Output folder.  An existing folder is replaced only when it is a
@@ -73,10 +73,11 @@ def write_run(
     out_dir = check_output_dir(out_dir)
     summary = summary_dict(analysis)
     page = render_html(analysis, created)
-    dist = analysis.distribution
+    dist = analysis.loss_distribution
     with atomic_output_dir(out_dir) as tmp:
         write_json(tmp / "summary.json", summary)
         write_loss_distribution(tmp / "loss_distribution.csv", dist.losses, dist.probabilities)
-        write_csv(tmp / "obligors.csv", OBLIGOR_COLUMNS, obligor_rows(analysis))
+        table = analysis.obligors
+        write_csv(tmp / "obligors.csv", list(table.columns), table.itertuples(index=False))
         (tmp / "report.html").write_text(page, encoding="utf-8")
     return out_dir

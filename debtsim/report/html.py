@@ -16,10 +16,10 @@ import numpy as np
 
 from debtsim.distribution import LossDistribution
 from debtsim.link_effects import contagion_effect, obligor_contagion, rank_links
+from debtsim.output_files import generator
 from debtsim.report import charts
-from debtsim.report.files import generator
+from debtsim.report.run_view import RunView
 from debtsim.report.summary import CAUTION
-from debtsim.runner import Analysis
 
 __all__ = ["BOOK_ROWS", "LINK_ROWS", "UPLIFT_BARS", "render_html"]
 
@@ -195,9 +195,9 @@ def _law_text(dist: LossDistribution) -> str:
     return f"{text}; {dist.losses.size:,} distinct loss values"
 
 
-def _facts(analysis: Analysis, created: _dt.datetime) -> str:
+def _facts(analysis: RunView, created: _dt.datetime) -> str:
     book = analysis.book
-    dist = analysis.distribution
+    dist = analysis.loss_distribution
     cd = analysis.copula_distribution
     rows: list[tuple[str, str]] = [
         ("Book", _e(book.name) + (f' <span class="note">({_e(book.source)})</span>'
@@ -223,7 +223,7 @@ def _facts(analysis: Analysis, created: _dt.datetime) -> str:
     return f'<h2>Run</h2><dl class="facts">{body}</dl>'
 
 
-def _kpis(analysis: Analysis) -> str:
+def _kpis(analysis: RunView) -> str:
     m = analysis.measures
     cm = analysis.copula_measures
     effect = contagion_effect(m, cm)
@@ -250,10 +250,10 @@ def _kpis(analysis: Analysis) -> str:
     return f'<div class="kpis">{"".join(html)}</div>'
 
 
-def _measures_table(analysis: Analysis) -> str:
+def _measures_table(analysis: RunView) -> str:
     m = analysis.measures
     cm = analysis.copula_measures
-    diag = analysis.distribution.diagnostics
+    diag = analysis.loss_distribution.diagnostics
     cdiag = analysis.copula_distribution.diagnostics if analysis.copula_distribution else {}
     cur = _e(analysis.book.currency)
 
@@ -317,8 +317,8 @@ def _figure_html(b64: str, alt: str, caption: str) -> str:
             f"<figcaption>{caption}</figcaption></figure>")
 
 
-def _charts(analysis: Analysis) -> str:
-    dist = analysis.distribution
+def _charts(analysis: RunView) -> str:
+    dist = analysis.loss_distribution
     cd = analysis.copula_distribution
     m = analysis.measures
     cur = analysis.book.currency
@@ -349,15 +349,15 @@ def _charts(analysis: Analysis) -> str:
     return "".join(parts)
 
 
-def _obligor_label(analysis: Analysis, index: int) -> str:
+def _obligor_label(analysis: RunView, index: int) -> str:
     o = analysis.book.obligors[index]
     name = o.name if len(o.name) <= 28 else o.name[:27] + "…"
     return f"{o.id} · {name}" if name else o.id
 
 
-def _contagion_section(analysis: Analysis) -> str:
+def _contagion_section(analysis: RunView) -> str:
     book = analysis.book
-    dist = analysis.distribution
+    dist = analysis.loss_distribution
     if not book.links:
         return ("<h2>Contagion</h2><p>This book has <b>no links</b>: no obligor holds a claim on "
                 "another, so the model reduces to the one-factor Gaussian copula and every "
@@ -418,9 +418,9 @@ def _contagion_section(analysis: Analysis) -> str:
     return "".join(parts)
 
 
-def _book_table(analysis: Analysis) -> str:
+def _book_table(analysis: RunView) -> str:
     book = analysis.book
-    oc = obligor_contagion(book, analysis.distribution.default_probability)
+    oc = obligor_contagion(book, analysis.loss_distribution.default_probability)
     n = len(book.obligors)
     if n > BOOK_ROWS:
         ead = np.array([o.ead for o in book.obligors])
@@ -474,12 +474,12 @@ settings”; sampled laws carry sampling error, shown as ± one standard error w
 reports it.</p>"""
 
 
-def render_html(analysis: Analysis, created: _dt.datetime | None = None) -> str:
+def render_html(analysis: RunView, created: _dt.datetime | None = None) -> str:
     """Render the report page of a run.
 
     Parameters
     ----------
-    analysis : Analysis
+    analysis : RunView
         The finished run.
     created : datetime, optional
         Time stamp printed on the page; now (UTC) when omitted.

@@ -357,7 +357,7 @@ def write_stress_report(path: Path, result: StressResult) -> None:
         "<h2>Scenarios</h2><table><tr><th class=t>scenario</th><th class=t>changes</th>"
         "<th class=t>engine</th><th class=t>full report</th></tr>",
     ]
-    for s, folder, a in zip(result.scenarios, result.folders, result.analyses, strict=True):
+    for s, folder, a in zip(result.scenarios, result.folders, result.runs, strict=True):
         parts.append(
             f"<tr><td class=t>{esc(s.name)}</td><td class=t>{esc(s.describe())}</td>"
             f"<td class=t>{esc(a.engine)}</td>"
@@ -387,7 +387,7 @@ def write_stress_report(path: Path, result: StressResult) -> None:
     parts.append("<h2>Loss laws</h2>")
     parts.append(
         _img(
-            loss_laws_chart(names, [a.distribution for a in result.analyses], levels, cur),
+            loss_laws_chart(names, [a.loss_distribution for a in result.runs], levels, cur),
             "loss laws overlaid",
         )
     )

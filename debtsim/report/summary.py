@@ -4,17 +4,14 @@ from __future__ import annotations
 
 from typing import Any
 
-from debtsim.book.loader import OBLIGOR_FIELDS
-from debtsim.link_effects import contagion_effect, obligor_contagion, rank_links
-from debtsim.report.files import GENERATOR_KEY, generator
+from debtsim.link_effects import contagion_effect, rank_links
+from debtsim.output_files import GENERATOR_KEY, generator
+from debtsim.report.run_view import RunView
 from debtsim.risk import level_key
-from debtsim.runner import Analysis
 
 __all__ = [
     "CAUTION",
-    "OBLIGOR_COLUMNS",
     "SUMMARY_LINKS",
-    "obligor_rows",
     "summary_dict",
 ]
 
@@ -28,16 +25,6 @@ CAUTION = (
 #: Links listed in ``summary.json`` under ``contagion.most_contagious_links``.
 SUMMARY_LINKS = 10
 
-#: Columns of ``obligors.csv``: the book's fields, the contract's two results, then extras.
-OBLIGOR_COLUMNS = (
-    *OBLIGOR_FIELDS,
-    "default_probability",
-    "expected_loss",
-    "own_default_probability",
-    "contagion_uplift",
-    "default_probability_standard_error",
-)
-
 #: Per-obligor diagnostics: written as a column of ``obligors.csv``, not into ``summary.json``.
 PER_OBLIGOR_DIAGNOSTICS = ("default_probability_standard_error",)
 
@@ -47,12 +34,12 @@ def _book_level(diagnostics: Any) -> dict[str, Any]:
     return {k: v for k, v in dict(diagnostics).items() if k not in PER_OBLIGOR_DIAGNOSTICS}
 
 
-def summary_dict(analysis: Analysis) -> dict[str, Any]:
+def summary_dict(analysis: RunView) -> dict[str, Any]:
     """Build the ``summary.json`` object of a run.
 
     Parameters
     ----------
-    analysis : Analysis
+    analysis : RunView
         The finished run.
 
     Returns
@@ -73,7 +60,7 @@ def summary_dict(analysis: Analysis) -> dict[str, Any]:
 
     """
     book = analysis.book
-    dist = analysis.distribution
+    dist = analysis.loss_distribution
     copula: dict[str, Any] | None = None
     if analysis.copula_distribution is not None and analysis.copula_measures is not None:
         cd = analysis.copula_distribution
@@ -123,27 +110,3 @@ def summary_dict(analysis: Analysis) -> dict[str, Any]:
         "book_source": book.source,
         "caution": CAUTION,
     }
-
-
-def obligor_rows(analysis: Analysis) -> list[list[Any]]:
-    """Rows of ``obligors.csv`` in book order, columns as :data:`OBLIGOR_COLUMNS`."""
-    book = analysis.book
-    oc = obligor_contagion(book, analysis.distribution.default_probability)
-    errors = analysis.distribution.diagnostics.get("default_probability_standard_error")
-    return [
-        [
-            o.id,
-            o.name,
-            o.sector,
-            float(o.ead),
-            float(o.pd),
-            float(o.lgd),
-            float(o.asset_correlation),
-            float(oc.default_probability[i]),
-            float(oc.expected_loss[i]),
-            float(oc.own_default_probability[i]),
-            float(oc.contagion_uplift[i]),
-            "" if errors is None else float(errors[i]),
-        ]
-        for i, o in enumerate(book.obligors)
-    ]

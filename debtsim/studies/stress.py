@@ -3,7 +3,7 @@
 The base book and every scenario run with the same engine options (engine,
 samples, seed, shots, levels, copula), so differences between rows come from
 the scenario alone.  Runs go in-process or on Dask like sweep points
-(:class:`debtsim.studies.sweep.Execution`); each run's result travels back as plain
+(:class:`debtsim.studies.execution.Execution`); each run's result travels back as plain
 arrays, so where it ran does not change it.
 """
 
@@ -12,7 +12,6 @@ from __future__ import annotations
 import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -22,10 +21,11 @@ from debtsim.book.records import Book
 from debtsim.distribution import LossDistribution
 from debtsim.errors import DebtsimError
 from debtsim.model.specification import LinkedFactorModel
-from debtsim.risk import level_key, measures
-from debtsim.runner import Analysis, RunOptions, analyse
+from debtsim.options import RunOptions
+from debtsim.risk import measure_columns, measures
+from debtsim.runner import RunResult, run_book
+from debtsim.studies.execution import Execution, run_tasks
 from debtsim.studies.scenarios import BASE_NAME, Scenario, apply_scenario, folder_name
-from debtsim.studies.sweep import Execution, measure_columns, measure_row, run_tasks
 
 __all__ = [
     "MOVERS_SHOWN",
@@ -33,7 +33,6 @@ __all__ = [
     "default_probability_table",
     "run_stress",
     "scenario_table",
-    "write_stress",
 ]
 
 #: Obligors listed in the report's "default probabilities that moved most".
@@ -50,7 +49,7 @@ class StressResult:
         The unstressed book.
     scenarios : tuple of Scenario
         The base (a neutral scenario named ``base``) first, then the file's.
-    analyses : tuple of Analysis
+    runs : tuple of RunResult
         One per scenario, in the same order; each holds its stressed book.
     options : RunOptions
     table : pandas.DataFrame
@@ -66,7 +65,7 @@ class StressResult:
 
     book: Book
     scenarios: tuple[Scenario, ...]
-    analyses: tuple[Analysis, ...]
+    runs: tuple[RunResult, ...]
     options: RunOptions
     table: pd.DataFrame
     default_probabilities: pd.DataFrame
@@ -102,28 +101,30 @@ def _evaluate(book: Book, task: tuple[Scenario, RunOptions]) -> dict[str, Any]:
     """Run one scenario; the result as picklable plain data."""
     scenario, options = task
     stressed = book if scenario.name == BASE_NAME else apply_scenario(book, scenario)
-    analysis = analyse(stressed, options)
+    analysis = run_book(stressed, options)
     return {
         "engine": analysis.engine,
         "engine_reason": analysis.engine_reason,
-        "distribution": _pack(analysis.distribution),
+        "distribution": _pack(analysis.loss_distribution),
         "copula": _pack(analysis.copula_distribution),
         "notes": tuple(analysis.notes),
     }
 
 
-def _rebuild(book: Book, scenario: Scenario, options: RunOptions, data: dict[str, Any]) -> Analysis:
+def _rebuild(
+    book: Book, scenario: Scenario, options: RunOptions, data: dict[str, Any]
+) -> RunResult:
     stressed = book if scenario.name == BASE_NAME else apply_scenario(book, scenario)
     dist = _unpack(data["distribution"])
     assert dist is not None
     copula = _unpack(data["copula"])
-    return Analysis(
+    return RunResult(
         book=stressed,
         model=LinkedFactorModel.from_book(stressed),
         options=options,
         engine=data["engine"],
         engine_reason=data["engine_reason"],
-        distribution=dist,
+        loss_distribution=dist,
         measures=measures(dist, options.levels),
         copula_distribution=copula,
         copula_measures=measures(copula, options.levels) if copula is not None else None,
@@ -132,7 +133,7 @@ def _rebuild(book: Book, scenario: Scenario, options: RunOptions, data: dict[str
 
 
 def scenario_table(
-    names: Sequence[str], analyses: Sequence[Analysis], levels: Sequence[float]
+    names: Sequence[str], analyses: Sequence[RunResult], levels: Sequence[float]
 ) -> pd.DataFrame:
     """Build the ``scenarios.csv`` table.
 
@@ -140,7 +141,7 @@ def scenario_table(
     ----------
     names : sequence of str
         Scenario names, base first.
-    analyses : sequence of Analysis
+    analyses : sequence of RunResult
         One per name.
     levels : sequence of float
         Confidence levels.
@@ -153,14 +154,14 @@ def scenario_table(
     """
     columns = ["scenario", *measure_columns(levels)]
     rows = [
-        {"scenario": name, **measure_row(a.measures, levels)}
+        {"scenario": name, **a.measures.as_row()}
         for name, a in zip(names, analyses, strict=True)
     ]
     return pd.DataFrame(rows, columns=columns)
 
 
 def default_probability_table(
-    book: Book, names: Sequence[str], analyses: Sequence[Analysis]
+    book: Book, names: Sequence[str], analyses: Sequence[RunResult]
 ) -> pd.DataFrame:
     """Tabulate the final default probability of every obligor under every scenario.
 
@@ -170,7 +171,7 @@ def default_probability_table(
         The unstressed book (ids, names, sectors).
     names : sequence of str
         Scenario names, base first.
-    analyses : sequence of Analysis
+    analyses : sequence of RunResult
         One per name.
 
     Returns
@@ -192,7 +193,7 @@ def default_probability_table(
         }
     )
     for name, a in zip(names, analyses, strict=True):
-        frame[name] = np.asarray(a.distribution.default_probability, dtype=float)
+        frame[name] = np.asarray(a.loss_distribution.default_probability, dtype=float)
     base = frame[names[0]].to_numpy()
     if len(names) > 1:
         changes = np.column_stack([frame[n].to_numpy() - base for n in names[1:]])
@@ -275,88 +276,10 @@ def run_stress(
     return StressResult(
         book=book,
         scenarios=runs,
-        analyses=analyses,
+        runs=analyses,
         options=options,
         table=scenario_table(names, analyses, options.levels),
         default_probabilities=default_probability_table(book, names, analyses),
         execution=execution.label,
         seconds=time.perf_counter() - started,
     )
-
-
-def write_stress(result: StressResult, out_dir: Path | str, *, source: str = "") -> Path:
-    """Write the stress folder atomically.
-
-    ``scenarios.csv``, ``default_probabilities.csv``, ``summary.json`` (marker
-    and overview), ``report.html`` and one sub-folder per run (``base`` first)
-    with that run's usual files.
-
-    Parameters
-    ----------
-    result : StressResult
-        From :func:`run_stress`.
-    out_dir : path-like
-        The final folder.
-    source : str
-        The scenario file, for the record.
-
-    Returns
-    -------
-    Path
-        The folder written.
-
-    """
-    from debtsim.report import write_run
-    from debtsim.report.files import atomic_output_dir, generator, write_csv, write_json
-    from debtsim.report.study_pages import write_stress_report
-
-    out_dir = Path(out_dir)
-    with atomic_output_dir(out_dir) as tmp:
-        for folder, analysis in zip(result.folders, result.analyses, strict=True):
-            write_run(analysis, tmp / folder)
-        table = result.table
-        write_csv(
-            tmp / "scenarios.csv",
-            list(table.columns),
-            list(table.itertuples(index=False, name=None)),
-        )
-        dp = result.default_probabilities
-        write_csv(
-            tmp / "default_probabilities.csv",
-            list(dp.columns),
-            list(dp.itertuples(index=False, name=None)),
-        )
-        write_json(tmp / "summary.json", _summary(result, generator(), source))
-        write_stress_report(tmp / "report.html", result)
-    return out_dir
-
-
-def _summary(result: StressResult, marker: str, source: str) -> dict[str, Any]:
-    o = result.options
-    return {
-        "kind": "stress",
-        "generator": marker,
-        "book": result.book.name,
-        "book_source": result.book.source,
-        "scenario_file": source,
-        "currency": result.book.currency,
-        "obligors": len(result.book.obligors),
-        "links": len(result.book.links),
-        "engine": o.engine,
-        "samples": o.samples,
-        "seed": o.seed,
-        "shots": o.shots,
-        "levels": [level_key(a) for a in o.levels],
-        "execution": result.execution,
-        "seconds": result.seconds,
-        "scenarios": [
-            {
-                "name": s.name,
-                "folder": folder,
-                "changes": s.describe(),
-                "engine": a.engine,
-                "measures": a.measures.to_dict(),
-            }
-            for s, folder, a in zip(result.scenarios, result.folders, result.analyses, strict=True)
-        ],
-    }

@@ -6,13 +6,9 @@ Cartesian grid of the values given, runs the book at each grid point and
 collects one row of risk measures per point.
 
 Execution
-    By default every point runs in this process, one after the other.
-    ``Execution(workers=N)`` starts a local Dask cluster of *N* worker
-    processes (one thread each); ``Execution(scheduler=ADDRESS)`` uses an
-    existing Dask cluster, whose workers must be able to import debtsim.
-    The book is sent to the workers once; each point is one task.  Worker
-    processes are spawned, so a script that calls :func:`run_sweep` with
-    workers must guard its entry point with ``if __name__ == "__main__":``.
+    In-process, on a local Dask cluster or on an existing one
+    (:mod:`debtsim.studies.execution`).  The book is sent to the workers
+    once; each point is one task.
 
 Seeds
     Each point runs with its own seed, derived from the run's seed and the
@@ -21,11 +17,10 @@ Seeds
     around it grows.
 
 Threads
-    Each point runs with OpenBLAS held at one thread
-    (:func:`single_blas_thread`), since BLAS splits sums by thread and the
-    thread count would change the last bits.  With the seeds, this makes
-    results identical bit for bit in-process, on a local cluster or on a
-    remote one.
+    Each point runs with BLAS held at one thread
+    (:func:`debtsim.studies.execution.single_blas_thread`).  With the seeds,
+    this makes results identical bit for bit in-process, on a local cluster
+    or on a remote one.
 
 Failures
     A point that raises is recorded in its row (``status`` ``failed``, the
@@ -47,54 +42,46 @@ Resuming
 
 from __future__ import annotations
 
-import contextlib
-import ctypes
 import hashlib
 import itertools
 import json
-import logging
 import math
 import os
 import shutil
-import threading
 import time
 import warnings
-from collections.abc import Callable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Any, TypeVar
+from typing import Any
 
 import pandas as pd
 
 from debtsim.book.records import Book
-from debtsim.errors import BookError, DebtsimError, OutputError, Problem
-from debtsim.risk import RiskMeasures, level_key
-from debtsim.runner import RunOptions, analyse
+from debtsim.errors import BookError, OutputError, Problem
+from debtsim.options import RunOptions
+from debtsim.output_files import check_output_dir, generator, jsonable
+from debtsim.risk import level_key, measure_columns
+from debtsim.runner import run_book
+from debtsim.studies.execution import Execution, run_tasks
 from debtsim.studies.scenarios import GLOBAL_FIELDS, NEUTRAL, Scenario, apply_scenario, check_field
 
 __all__ = [
     "MAX_POINTS",
     "STATUS_FAILED",
     "STATUS_OK",
-    "Execution",
     "GridAxis",
     "GridError",
     "PointTask",
     "SweepResult",
     "book_fingerprint",
-    "dask_client",
     "evaluate_point",
     "grid_points",
-    "measure_columns",
-    "measure_row",
     "parse_grid",
     "partial_dir",
     "point_key",
     "point_seed",
     "run_sweep",
-    "run_tasks",
-    "single_blas_thread",
-    "write_sweep",
 ]
 
 #: Largest grid accepted (a larger one is almost surely a typo).
@@ -104,11 +91,6 @@ STATUS_FAILED = "failed"
 #: ``kind`` of the marker written in a sweep's work and output folders.
 PARTIAL_KIND = "sweep-partial"
 SWEEP_KIND = "sweep"
-
-T = TypeVar("T")
-R = TypeVar("R")
-S = TypeVar("S")
-
 
 class GridError(BookError):
     """A ``--grid`` option is invalid; one problem per line, like a bad book."""
@@ -277,259 +259,6 @@ def point_seed(seed: int, values: Mapping[str, float]) -> int:
     return int.from_bytes(digest[:8], "big") % (2**31 - 1)
 
 
-# ------------------------------------------------------------------ the measures
-def measure_columns(levels: Sequence[float]) -> list[str]:
-    """Measure columns of ``scenarios.csv`` and ``sweep.csv``.
-
-    ``expected_loss``, ``loss_std``, then for each level (as in
-    ``summary.json``, e.g. ``0.999``) ``var_<level>``,
-    ``expected_shortfall_<level>`` and ``economic_capital_<level>``.
-    """
-    cols = ["expected_loss", "loss_std"]
-    for a in levels:
-        key = level_key(a)
-        cols += [f"var_{key}", f"expected_shortfall_{key}", f"economic_capital_{key}"]
-    return cols
-
-
-def measure_row(m: RiskMeasures, levels: Sequence[float]) -> dict[str, float]:
-    """Return the measure columns of one run, keyed as :func:`measure_columns`."""
-    row = {"expected_loss": float(m.expected_loss), "loss_std": float(m.loss_std)}
-    for a in levels:
-        key = level_key(a)
-        row[f"var_{key}"] = float(m.var[key])
-        row[f"expected_shortfall_{key}"] = float(m.expected_shortfall[key])
-        row[f"economic_capital_{key}"] = float(m.economic_capital[key])
-    return row
-
-
-# ------------------------------------------------------------------- execution
-@dataclass(frozen=True)
-class Execution:
-    """Where tasks run.
-
-    Attributes
-    ----------
-    workers : int or None
-        Start a local Dask cluster of this many worker processes.
-    scheduler : str or None
-        Address of an existing Dask scheduler (e.g. ``tcp://10.0.0.5:8786``).
-
-    """
-
-    workers: int | None = None
-    scheduler: str | None = None
-
-    def __post_init__(self) -> None:
-        if self.workers is not None and self.scheduler is not None:
-            raise DebtsimError("--workers and --scheduler exclude each other; give one")
-        if self.workers is not None and self.workers < 1:
-            raise DebtsimError(f"--workers: must be at least 1, got {self.workers}")
-
-    @property
-    def in_process(self) -> bool:
-        """Whether tasks run in this process."""
-        return self.workers is None and self.scheduler is None
-
-    @property
-    def label(self) -> str:
-        """Human description, e.g. ``local Dask cluster of 2 workers``."""
-        if self.scheduler is not None:
-            return f"Dask scheduler at {self.scheduler}"
-        if self.workers is not None:
-            return f"local Dask cluster of {self.workers} worker process" + (
-                "es" if self.workers != 1 else ""
-            )
-        return "in-process"
-
-
-@contextlib.contextmanager
-def dask_client(execution: Execution) -> Iterator[Any]:
-    """Open a ``distributed.Client`` for ``execution``, closed (with its cluster) on exit.
-
-    Raises
-    ------
-    DebtsimError
-        When the scheduler cannot be reached or the cluster cannot start.
-
-    """
-    from distributed import Client, LocalCluster
-
-    if execution.scheduler is not None:
-        try:
-            client = Client(execution.scheduler, timeout="20s")
-        except (OSError, TimeoutError, ValueError) as error:
-            raise DebtsimError(
-                f"--scheduler: cannot connect to {execution.scheduler}: {error}"
-            ) from error
-        try:
-            yield client
-        finally:
-            client.close()
-        return
-    import dask
-
-    # Dask starts workers with MALLOC_TRIM_THRESHOLD_ set, which also stops
-    # glibc from adapting its mmap threshold: every large numpy temporary is
-    # then a fresh mmap, and the engines ran twice as slow (measured).  Keep
-    # Dask's other settings (one OpenMP/BLAS thread per worker process).
-    environ = {
-        k: v
-        for k, v in dict(dask.config.get("distributed.nanny.pre-spawn-environ", {})).items()
-        if k != "MALLOC_TRIM_THRESHOLD_"
-    }
-    try:
-        with dask.config.set({"distributed.nanny.pre-spawn-environ": environ}):
-            cluster = LocalCluster(
-                n_workers=execution.workers,
-                threads_per_worker=1,
-                processes=True,
-                dashboard_address=None,
-                silence_logs=logging.ERROR,
-            )
-    except (OSError, TimeoutError, RuntimeError) as error:
-        raise DebtsimError(f"--workers: cannot start a local Dask cluster: {error}") from error
-    try:
-        client = Client(cluster)
-        try:
-            yield client
-        finally:
-            client.close()
-    finally:
-        cluster.close()
-
-
-_BLAS_LOCK = threading.Lock()
-_BLAS_STATE: dict[str, Any] = {"active": 0, "saved": []}
-
-
-def _openblas_controls() -> list[tuple[Any, Any]]:
-    """``(set_num_threads, get_num_threads)`` of every OpenBLAS loaded in this process."""
-    import scipy.linalg  # noqa: F401  (loads scipy's own OpenBLAS, used by its routines)
-
-    try:
-        maps = Path("/proc/self/maps").read_text()
-    except OSError:  # not Linux: leave BLAS threading as it is
-        return []
-    paths = sorted(
-        {
-            line.split()[-1]
-            for line in maps.splitlines()
-            if "openblas" in line.rsplit("/", 1)[-1].lower()
-        }
-    )
-    controls = []
-    for path in paths:
-        try:
-            lib = ctypes.CDLL(path)
-        except OSError:
-            continue
-        for name in ("openblas", "scipy_openblas"):
-            for suffix in ("", "64_"):
-                set_ = getattr(lib, f"{name}_set_num_threads{suffix}", None)
-                get = getattr(lib, f"{name}_get_num_threads{suffix}", None)
-                if set_ is not None and get is not None:
-                    controls.append((set_, get))
-    return controls
-
-
-@contextlib.contextmanager
-def single_blas_thread() -> Iterator[None]:
-    """Hold OpenBLAS at one thread inside the block, then restore its thread count.
-
-    BLAS splits sums by thread, so the thread count changes the last bits of
-    results.  Every sweep point and stress run is computed inside this block,
-    wherever it runs, so in-process and Dask results agree bit for bit (and
-    two runs on one core each do not oversubscribe the machine).  Nested and
-    concurrent blocks share one setting.  Only OpenBLAS (what numpy and scipy
-    wheels ship) is controlled; with another BLAS this does nothing.
-    """
-    with _BLAS_LOCK:
-        if _BLAS_STATE["active"] == 0:
-            saved = []
-            for set_, get in _openblas_controls():
-                saved.append((set_, int(get())))
-                set_(1)
-            _BLAS_STATE["saved"] = saved
-        _BLAS_STATE["active"] += 1
-    try:
-        yield
-    finally:
-        with _BLAS_LOCK:
-            _BLAS_STATE["active"] -= 1
-            if _BLAS_STATE["active"] == 0:
-                for set_, count in _BLAS_STATE["saved"]:
-                    set_(count)
-                _BLAS_STATE["saved"] = []
-
-
-def _pinned(fn: Callable[[S, T], R], shared: S, item: T) -> R:
-    """Call ``fn(shared, item)`` with BLAS held at one thread."""
-    with single_blas_thread():
-        return fn(shared, item)
-
-
-def run_tasks(
-    fn: Callable[[S, T], R],
-    shared: S,
-    items: Sequence[T],
-    execution: Execution,
-    on_result: Callable[[int, R | BaseException], None],
-) -> None:
-    """Run ``fn(shared, item)`` for every item and report each result as it arrives.
-
-    Parameters
-    ----------
-    fn : callable
-        A module-level (picklable) function.
-    shared : object
-        Data every task needs (e.g. the book); sent to each worker once.
-    items : sequence
-        One task per item.
-    execution : Execution
-        In-process, local cluster or existing scheduler.
-    on_result : callable
-        ``on_result(index, result_or_exception)``, called in this process in
-        completion order; an exception raised by a task (or by the cluster,
-        e.g. a killed worker) is passed instead of a result.
-
-    Notes
-    -----
-    Remaining tasks are cancelled when ``on_result`` raises (or on
-    ``KeyboardInterrupt``).
-
-    """
-    if not items:
-        return
-    if execution.in_process:
-        for i, item in enumerate(items):
-            try:
-                result: R | BaseException = _pinned(fn, shared, item)
-            except Exception as error:  # a failed task is reported, not fatal
-                result = error
-            on_result(i, result)
-        return
-    from distributed import as_completed
-
-    with dask_client(execution) as client:
-        shared_future = client.scatter(shared, broadcast=True, hash=False)
-        futures = {
-            client.submit(_pinned, fn, shared_future, item, pure=False): i
-            for i, item in enumerate(items)
-        }
-        try:
-            for future in as_completed(futures):
-                try:
-                    result = future.result()
-                except Exception as error:
-                    result = error
-                on_result(futures[future], result)
-        finally:
-            pending = [f for f in futures if not f.done()]
-            if pending:
-                client.cancel(pending)
-
-
 # --------------------------------------------------------------------- a point
 @dataclass(frozen=True)
 class PointTask:
@@ -584,9 +313,9 @@ def evaluate_point(book: Book, task: PointTask) -> dict[str, Any]:
         warnings.simplefilter("always")
         try:
             scenario = Scenario(name=task.key, **task.values)
-            analysis = analyse(apply_scenario(book, scenario), task.options)
+            analysis = run_book(apply_scenario(book, scenario), task.options)
             out["engine"] = analysis.engine
-            out["measures"] = measure_row(analysis.measures, task.options.levels)
+            out["measures"] = analysis.measures.as_row()
         except Exception as error:  # recorded in the point's row
             out["status"] = STATUS_FAILED
             out["error"] = f"{type(error).__name__}: {error}".strip()
@@ -640,8 +369,6 @@ def _read_json(path: Path) -> Any:
 
 
 def _write_json_atomic(path: Path, data: Mapping[str, Any]) -> None:
-    from debtsim.report.files import jsonable
-
     tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
     with open(tmp, "w", encoding="utf-8") as fh:
         json.dump(jsonable(data), fh, allow_nan=False)
@@ -817,8 +544,6 @@ def run_sweep(
     execution = execution or Execution()
     axes = tuple(axes)
     out_dir = Path(out_dir)
-    from debtsim.report.files import check_output_dir, generator
-
     check_output_dir(out_dir)
     work = partial_dir(out_dir)
     if work.exists() and not _is_partial(work):
@@ -906,77 +631,3 @@ def _table(
     for c in columns:
         frame[c] = frame[c].astype(float)
     return frame
-
-
-def write_sweep(result: SweepResult, out_dir: Path | str) -> Path:
-    """Write the sweep's folder atomically and drop its work folder.
-
-    Writes ``sweep.csv``, ``sweep.parquet``, ``summary.json`` (the marker with
-    grid, options, counts and per-point seeds), ``charts/*.png`` and
-    ``report.html``.
-
-    Parameters
-    ----------
-    result : SweepResult
-        From :func:`run_sweep`.
-    out_dir : path-like
-        The final folder.
-
-    Returns
-    -------
-    Path
-        The folder written.
-
-    """
-    from debtsim.report.files import atomic_output_dir, generator, write_csv, write_json
-    from debtsim.report.study_pages import sweep_charts, write_sweep_report
-
-    out_dir = Path(out_dir)
-    table = result.table
-    with atomic_output_dir(out_dir) as tmp:
-        rows = [
-            [None if isinstance(v, float) and math.isnan(v) else v for v in row]
-            for row in table.itertuples(index=False, name=None)
-        ]
-        write_csv(tmp / "sweep.csv", list(table.columns), rows)
-        table.to_parquet(tmp / "sweep.parquet", index=False)
-        charts = sweep_charts(table, result.axes, result.options.levels, result.book.currency)
-        (tmp / "charts").mkdir()
-        for name, png in charts.items():
-            (tmp / "charts" / f"{name}.png").write_bytes(png)
-        write_json(tmp / "summary.json", _summary(result, generator()))
-        write_sweep_report(tmp / "report.html", result, charts)
-    shutil.rmtree(partial_dir(out_dir), ignore_errors=True)
-    return out_dir
-
-
-def _summary(result: SweepResult, marker: str) -> dict[str, Any]:
-    o = result.options
-    engines = sorted({p["engine"] for p in result.points if p.get("engine")})
-    return {
-        "kind": SWEEP_KIND,
-        "generator": marker,
-        "book": result.book.name,
-        "book_source": result.book.source,
-        "currency": result.book.currency,
-        "obligors": len(result.book.obligors),
-        "links": len(result.book.links),
-        "grid": {a.name: list(a.values) for a in result.axes},
-        "points": len(result.table),
-        "failed": result.failed,
-        "computed": result.computed,
-        "reused": result.reused,
-        "execution": result.execution,
-        "seconds": result.seconds,
-        "engine": o.engine,
-        "engines_used": engines,
-        "samples": o.samples,
-        "seed": o.seed,
-        "shots": o.shots,
-        "levels": [level_key(a) for a in o.levels],
-        "seed_rule": "each point's seed is sha256('debtsim-sweep|<seed>|<point key>') "
-        "modulo 2**31-1 (debtsim.studies.sweep.point_seed)",
-        "fingerprint": result.fingerprint,
-        "point_engines": {p["key"]: p.get("engine", "") for p in result.points},
-        "warnings": sorted({w for p in result.points for w in p.get("warnings", [])}),
-    }

@@ -9,7 +9,8 @@ from qiskit_aer import AerSimulator
 from scipy.special import comb
 
 from debtsim.book.records import Book, Link, Obligor
-from debtsim.engines import EngineSettings, make_engine
+from debtsim.engines import make_engine
+from debtsim.options import RunOptions
 from debtsim.engines.circuit import engine as circuit_engine
 from debtsim.engines.circuit.builder import (
     MAX_CONTROLS,
@@ -269,7 +270,7 @@ def test_wide_multiplexer_with_extreme_probabilities_exports() -> None:
 def test_made_by_registry_with_settings() -> None:
     """make_engine builds the circuit engine; the exact law reports no seed."""
     model = make_model(BOOKS["star"])
-    engine = make_engine("circuit", EngineSettings())
+    engine = make_engine("circuit", RunOptions())
     assert isinstance(engine, CircuitEngine)
     dist = engine.run(model, progress=lambda done, total: None)
     assert dist.seed is None and abs(dist.probabilities.sum() - 1.0) < 1e-12

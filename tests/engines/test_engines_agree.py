@@ -131,7 +131,8 @@ def test_no_link_el_matches_pd_sum() -> None:
 
 def test_circuit_reports_node_error_and_run_notes_it() -> None:
     """At R = 0.99 the circuit's fixed nodes misstate PD; the law and the run say so."""
-    from debtsim.runner import RunOptions, analyse
+    from debtsim.options import RunOptions
+    from debtsim.runner import run_book
 
     obligors = tuple(Obligor(id=f"S{i}", ead=100.0, pd=0.01, lgd=0.45, asset_correlation=0.99)
                      for i in range(4))
@@ -142,5 +143,5 @@ def test_circuit_reports_node_error_and_run_notes_it() -> None:
     # moderate correlation: 32 Gauss-Hermite nodes are accurate (measured ~1e-5 relative)
     calm = CircuitEngine().run(LinkedFactorModel.from_book(BOOKS["no links"]))
     assert calm.diagnostics["factor_node_pd_error"] < 1e-3
-    run = analyse(book, RunOptions(engine="circuit", copula=False))
+    run = run_book(book, RunOptions(engine="circuit", copula=False))
     assert any("factor nodes" in note for note in run.notes)

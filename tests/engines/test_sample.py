@@ -12,7 +12,8 @@ from scipy.stats import binom, norm
 
 from debtsim.book.records import Book, Link, Obligor
 from debtsim.distribution import LossDistribution
-from debtsim.engines import EngineSettings, make_engine
+from debtsim.engines import make_engine
+from debtsim.options import RunOptions
 from debtsim.engines.sample.engine import SampleEngine, plan_importance
 from debtsim.engines.sample.scenario_draws import (
     _CAP,
@@ -121,7 +122,7 @@ def test_bad_settings_are_refused_with_the_argument_named():
 
 def test_registry_builds_the_sample_engine():
     """``make_engine('sample', ...)`` gives a SampleEngine with the settings passed."""
-    engine = make_engine("sample", EngineSettings(samples=123, seed=5, levels=(0.95,)))
+    engine = make_engine("sample", RunOptions(samples=123, seed=5, levels=(0.95,)))
     assert isinstance(engine, SampleEngine)
     assert (engine.samples, engine.seed, engine.levels) == (123, 5, (0.95,))
 

@@ -25,9 +25,10 @@ from debtsim.report import (
     summary_dict,
     write_run,
 )
-from debtsim.report.files import jsonable
-from debtsim.report.summary import OBLIGOR_COLUMNS
-from debtsim.runner import Analysis, RunOptions
+from debtsim.output_files import jsonable
+from debtsim.runner import OBLIGOR_COLUMNS
+from debtsim.options import RunOptions
+from debtsim.runner import RunResult
 from tests.reference import enumerate_law
 
 LEVELS = (0.99, 0.999)
@@ -66,18 +67,18 @@ def make_analysis(
     dist: LossDistribution | None = None,
     copula: bool = True,
     engine: str = "exact",
-) -> Analysis:
-    """A hand-built Analysis (no engine needed)."""
+) -> RunResult:
+    """A hand-built RunResult (no engine needed)."""
     book = book or Book("Example Mutual - trade desk", "EUR", OBLIGORS, LINKS, source="b.yaml")
     dist = dist or _law(book, links=True)
     cd = _law(book, links=False) if copula else None
-    return Analysis(
+    return RunResult(
         book=book,
         model=LinkedFactorModel.from_book(book),
         options=RunOptions(levels=LEVELS, copula=copula),
         engine=engine,
         engine_reason="chosen for the test",
-        distribution=dist,
+        loss_distribution=dist,
         measures=risk.measures(dist, LEVELS),
         copula_distribution=cd,
         copula_measures=risk.measures(cd, LEVELS) if cd is not None else None,
@@ -85,12 +86,12 @@ def make_analysis(
 
 
 @pytest.fixture(scope="module")
-def analysis() -> Analysis:
+def analysis() -> RunResult:
     return make_analysis()
 
 
 @pytest.fixture(scope="module")
-def written(analysis: Analysis, tmp_path_factory: pytest.TempPathFactory) -> Path:
+def written(analysis: RunResult, tmp_path_factory: pytest.TempPathFactory) -> Path:
     return write_run(analysis, tmp_path_factory.mktemp("run") / "out")
 
 
@@ -111,12 +112,12 @@ def test_summary_has_contract_keys_in_order(written: Path) -> None:
     assert data["total_exposure"] == pytest.approx(4_000_000)
 
 
-def test_summary_values_match_analysis(written: Path, analysis: Analysis) -> None:
+def test_summary_values_match_analysis(written: Path, analysis: RunResult) -> None:
     """The measures written are the analysis' measures; economic capital is VaR - EL."""
     data = json.loads((written / "summary.json").read_text(encoding="utf-8"))
     m = data["measures"]
     assert m["expected_loss"] == analysis.measures.expected_loss
-    assert m["var"]["0.999"] == analysis.measures.var["0.999"]
+    assert m["var"]["0.999"] == analysis.measures.var[0.999]
     assert m["economic_capital"]["0.99"] == pytest.approx(
         m["var"]["0.99"] - m["expected_loss"], rel=1e-12
     )
@@ -143,7 +144,7 @@ def test_summary_is_plain_json_with_numpy_inputs() -> None:
 
 
 # ------------------------------------------------------------------ the CSVs
-def test_loss_distribution_csv_ascending_sums_to_one(written: Path, analysis: Analysis) -> None:
+def test_loss_distribution_csv_ascending_sums_to_one(written: Path, analysis: RunResult) -> None:
     """loss_distribution.csv has the contract header, ascending losses and total mass 1."""
     with open(written / "loss_distribution.csv", encoding="utf-8") as fh:
         rows = list(csv.reader(fh))
@@ -153,8 +154,8 @@ def test_loss_distribution_csv_ascending_sums_to_one(written: Path, analysis: An
     assert np.all(np.diff(losses) > 0)
     assert probs.sum() == pytest.approx(1.0, abs=1e-12)
     # written at round-trip precision
-    np.testing.assert_array_equal(losses, analysis.distribution.losses)
-    np.testing.assert_array_equal(probs, analysis.distribution.probabilities)
+    np.testing.assert_array_equal(losses, analysis.loss_distribution.losses)
+    np.testing.assert_array_equal(probs, analysis.loss_distribution.probabilities)
 
 
 def test_loss_distribution_csv_drops_zero_atoms(tmp_path: Path) -> None:
@@ -169,7 +170,7 @@ def test_loss_distribution_csv_drops_zero_atoms(tmp_path: Path) -> None:
     assert lines == ["loss,probability", "0.0,0.5", "2.0,0.5"]
 
 
-def test_obligors_csv_rows_and_columns(written: Path, analysis: Analysis) -> None:
+def test_obligors_csv_rows_and_columns(written: Path, analysis: RunResult) -> None:
     """obligors.csv has one row per obligor in book order, inputs then final PD and EL."""
     with open(written / "obligors.csv", encoding="utf-8") as fh:
         rows = list(csv.DictReader(fh))
@@ -179,7 +180,7 @@ def test_obligors_csv_rows_and_columns(written: Path, analysis: Analysis) -> Non
     assert header[:9] == ["id", "name", "sector", "ead", "pd", "lgd", "asset_correlation",
                           "default_probability", "expected_loss"]
     assert [r["id"] for r in rows] == ["A1", "B7", "C3"]
-    dp = analysis.distribution.default_probability
+    dp = analysis.loss_distribution.default_probability
     for i, (r, o) in enumerate(zip(rows, OBLIGORS, strict=True)):
         assert float(r["default_probability"]) == dp[i]
         assert float(r["expected_loss"]) == pytest.approx(dp[i] * o.ead * o.lgd, rel=1e-15)
@@ -265,7 +266,7 @@ def test_exception_leaves_nothing(tmp_path: Path) -> None:
     assert list(tmp_path.iterdir()) == []
 
 
-def test_exception_keeps_previous_report(tmp_path: Path, analysis: Analysis) -> None:
+def test_exception_keeps_previous_report(tmp_path: Path, analysis: RunResult) -> None:
     """A failing rewrite of an existing report leaves the old report as it was."""
     out = write_run(analysis, tmp_path / "out")
     before = {p.name: p.read_bytes() for p in out.iterdir()}
@@ -276,7 +277,7 @@ def test_exception_keeps_previous_report(tmp_path: Path, analysis: Analysis) -> 
     assert sorted(p.name for p in tmp_path.iterdir()) == ["out"]
 
 
-def test_foreign_folder_refused_untouched(tmp_path: Path, analysis: Analysis) -> None:
+def test_foreign_folder_refused_untouched(tmp_path: Path, analysis: RunResult) -> None:
     """An existing folder that is not a debtsim output is refused and left exactly as it was."""
     out = tmp_path / "mine"
     out.mkdir()
@@ -297,7 +298,7 @@ def test_file_in_the_way_refused(tmp_path: Path) -> None:
         check_output_dir(tmp_path / "out")
 
 
-def test_previous_report_replaced(tmp_path: Path, analysis: Analysis) -> None:
+def test_previous_report_replaced(tmp_path: Path, analysis: RunResult) -> None:
     """A previous debtsim report (or an empty folder) is replaced, leaving no backup behind."""
     out = tmp_path / "out"
     write_run(analysis, out)
@@ -339,7 +340,7 @@ def test_link_ranking_hand_computed() -> None:
         link_transmission(book, [0.1])
 
 
-def test_contagion_effect_differences(analysis: Analysis) -> None:
+def test_contagion_effect_differences(analysis: RunResult) -> None:
     """Measure differences are model minus copula per level, None without a copula."""
     m, c = analysis.measures, analysis.copula_measures
     assert c is not None
@@ -350,4 +351,4 @@ def test_contagion_effect_differences(analysis: Analysis) -> None:
     assert eff["expected_loss_from_contagion"] > 0
     none = contagion_effect(m, None)
     assert none["expected_loss_from_contagion"] is None
-    assert none["var_from_contagion"] == {"0.99": None, "0.999": None}
+    assert none["var_from_contagion"] == {0.99: None, 0.999: None}

@@ -16,7 +16,8 @@ from debtsim.book.loader import load_book
 from debtsim.book.records import Book, Link, Obligor
 from debtsim.errors import BookError
 from debtsim.model.factor_grid import gauss_hermite
-from debtsim.runner import RunOptions, analyse
+from debtsim.options import RunOptions
+from debtsim.runner import run_book
 from debtsim.studies.scenarios import (
     MAX_ASSET_CORRELATION,
     Scenario,
@@ -63,8 +64,8 @@ def _engine_available(name: str) -> bool:
 def _exact_law(book: Book, engine: str) -> tuple[dict[float, float], np.ndarray]:
     if not _engine_available(engine):
         pytest.skip(f"engine {engine} not available")
-    a = analyse(book, RunOptions(engine=engine, copula=False))
-    d = a.distribution
+    a = run_book(book, RunOptions(engine=engine, copula=False))
+    d = a.loss_distribution
     law = {round(float(x), 9): float(p) for x, p in zip(d.losses, d.probabilities, strict=True)}
     return law, np.asarray(d.default_probability)
 
@@ -403,7 +404,7 @@ def test_every_engine_handles_certain_default(engine: str) -> None:
         pytest.skip(f"engine {engine} not available")
     stressed = apply_scenario(TINY, Scenario(name="d", defaulted=("A",)))
     options = RunOptions(engine=engine, samples=20_000, copula=False)
-    dist = analyse(stressed, options).distribution
+    dist = run_book(stressed, options).loss_distribution
     assert dist.default_probability[0] == pytest.approx(1.0, abs=1e-12)
     # A's loss (EAD 100, LGD 0.5) is always there: no mass below 50
     assert float(dist.probabilities[dist.losses < 50.0 - 1e-9].sum()) == pytest.approx(

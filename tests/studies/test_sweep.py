@@ -21,20 +21,21 @@ import debtsim.studies.sweep as sweep_module
 from debtsim.book.records import Book, Link, Obligor
 from debtsim.cli import app
 from debtsim.errors import OutputError
-from debtsim.runner import RunOptions, analyse
+from debtsim.options import RunOptions
+from debtsim.runner import run_book
 from debtsim.studies.scenarios import Scenario, apply_scenario
+from debtsim.report.study_folders import write_sweep
+from debtsim.risk import measure_columns
+from debtsim.studies.execution import Execution
 from debtsim.studies.sweep import (
-    Execution,
     GridAxis,
     GridError,
     grid_points,
-    measure_columns,
     parse_grid,
     partial_dir,
     point_key,
     point_seed,
     run_sweep,
-    write_sweep,
 )
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -172,26 +173,26 @@ def test_sweep_rows_match_single_runs(tmp_path: Path) -> None:
     assert len(table) == 6 and (table["status"] == "ok").all()
     row = table.iloc[5]
     values = {"pd_scale": 2.0, "contagion_scale": 1.5}
-    alone = analyse(
+    alone = run_book(
         apply_scenario(BOOK, Scenario(name="x", **values)),
         replace(options, seed=point_seed(options.seed, values)),
     )
     assert row["expected_loss"] == alone.measures.expected_loss
-    assert row["var_0.999"] == alone.measures.var["0.999"]
+    assert row["var_0.999"] == alone.measures.var[0.999]
 
 
 def test_failed_point_is_recorded_and_others_finish(
     tmp_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
     """A point that raises gets status failed and its error; the others are computed."""
-    real = sweep_module.analyse
+    real = sweep_module.run_book
 
     def flaky(book: Book, options: RunOptions, progress: Any = None) -> Any:
         if any(o.pd == pytest.approx(0.04) for o in book.obligors):  # pd_scale 2 on A
             raise RuntimeError("engine fell over")
         return real(book, options, progress)
 
-    monkeypatch.setattr(sweep_module, "analyse", flaky)
+    monkeypatch.setattr(sweep_module, "run_book", flaky)
     options = RunOptions(engine=_exact_engine(), copula=False)
     result = run_sweep(BOOK, AXES, options, tmp_path / "out")
     table = result.table
@@ -209,7 +210,7 @@ def test_written_files_and_resume_from_output(
     """A finished sweep's folder is complete; --resume reruns only its failed points."""
     out = tmp_path / "out"
     options = RunOptions(engine=_exact_engine(), copula=False)
-    real = sweep_module.analyse
+    real = sweep_module.run_book
     fail_at = {"pd": 0.04}
 
     def flaky(book: Book, options: RunOptions, progress: Any = None) -> Any:
@@ -217,7 +218,7 @@ def test_written_files_and_resume_from_output(
             raise RuntimeError("transient")
         return real(book, options, progress)
 
-    monkeypatch.setattr(sweep_module, "analyse", flaky)
+    monkeypatch.setattr(sweep_module, "run_book", flaky)
     first = run_sweep(BOOK, AXES, options, out)
     write_sweep(first, out)
     for name in ("sweep.csv", "sweep.parquet", "summary.json", "report.html"):

@@ -34,6 +34,7 @@ from numpy.typing import NDArray
 from qiskit import ClassicalRegister, QuantumCircuit, QuantumRegister, qasm3, transpile
 from qiskit.circuit.library import StatePreparation, UCGate, UCRYGate
 
+from debtsim._typing import FloatArray
 from debtsim.errors import EngineRefusedError
 from debtsim.model.factor_grid import FactorGrid, gauss_hermite
 from debtsim.model.linked_group_law import MAX_GROUP_SIZE, group_law, seed_probability
@@ -54,7 +55,6 @@ __all__ = [
     "to_qasm3",
 ]
 
-FloatArray = NDArray[np.float64]
 
 #: Most control qubits one multiplexed rotation may have before simplification.
 #: A gate with ``c`` controls carries ``2**c`` 2x2 matrices; building one with

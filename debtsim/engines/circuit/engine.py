@@ -15,9 +15,9 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from numpy.typing import NDArray
 from qiskit_aer import AerSimulator
 
+from debtsim._typing import FloatArray
 from debtsim.distribution import LossDistribution
 from debtsim.engines.base import Engine, ProgressHook
 from debtsim.engines.circuit.builder import (
@@ -32,7 +32,6 @@ from debtsim.model.specification import LinkedFactorModel
 
 __all__ = ["DEFAULT_MAX_QUBITS", "MAX_OBLIGORS", "CircuitEngine", "statevector_bytes"]
 
-FloatArray = NDArray[np.float64]
 
 #: Largest circuit (factor plus obligor qubits) the engine accepts.  Measured on
 #: a 2-core machine shared with other jobs (benchmarks/bench_circuit.py): 28
@@ -197,7 +196,23 @@ class CircuitEngine(Engine):
             return f"{problem}; use the 'sample' or 'exact' engine"
         return None
 
-    def run(self, model: LinkedFactorModel, *, progress: ProgressHook | None = None) -> LossDistribution:
+    def run_without_links(
+        self, model: LinkedFactorModel, *, progress: ProgressHook | None = None
+    ) -> LossDistribution:
+        """Compute the book without links exactly on the circuit's own factor nodes.
+
+        Without links the obligors are independent given the factor, so the
+        exact engine on the same Gauss–Hermite nodes gives the distribution
+        the circuit would, without a statevector (and without shot noise).
+        """
+        from debtsim.engines.exact.engine import ExactEngine
+
+        on_nodes = ExactEngine(factor_grid=factor_grid_for(model, self.factor_grid))
+        return on_nodes.run(model.without_links(), progress=progress)
+
+    def run(
+        self, model: LinkedFactorModel, *, progress: ProgressHook | None = None
+    ) -> LossDistribution:
         """Compute the loss law of ``model`` from the circuit.
 
         Raises

@@ -51,6 +51,7 @@ import numpy as np
 from numpy.typing import NDArray
 from scipy.special import ndtr, ndtri
 
+from debtsim._typing import FloatArray
 from debtsim.distribution import LossDistribution
 from debtsim.engines.base import Engine, ProgressHook
 from debtsim.engines.exact.loss_grid import (
@@ -69,7 +70,6 @@ from debtsim.model.specification import LinkedFactorModel, conditional_default_p
 
 __all__ = ["ExactEngine"]
 
-FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
 
 #: Factor range of the default grid; the normal mass outside is ~2e-17.
@@ -236,7 +236,9 @@ class ExactEngine(Engine):
         )
 
     # ------------------------------------------------------------ run
-    def run(self, model: LinkedFactorModel, *, progress: ProgressHook | None = None) -> LossDistribution:
+    def run(
+        self, model: LinkedFactorModel, *, progress: ProgressHook | None = None
+    ) -> LossDistribution:
         """Compute the loss law of ``model`` (see the module notes)."""
         reason = self.refusal(model)
         if reason is not None:

@@ -41,6 +41,8 @@ import scipy.fft as sfft
 from numpy.typing import NDArray
 from scipy.signal import fftconvolve
 
+from debtsim._typing import FloatArray
+
 __all__ = [
     "AtomConvolution",
     "HARD_ORDER",
@@ -54,7 +56,6 @@ __all__ = [
     "place_window",
 ]
 
-FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
 
 #: Bound on the summed truncation error of the log-PGF series, per node.

@@ -72,9 +72,9 @@ from typing import Any
 
 import numpy as np
 from numpy.polynomial import Chebyshev
-from numpy.typing import NDArray
 from scipy.special import ndtr
 
+from debtsim._typing import FloatArray
 from debtsim.distribution import LossDistribution
 from debtsim.engines.base import Engine, ProgressHook
 from debtsim.engines.sample.scenario_draws import (
@@ -88,7 +88,7 @@ from debtsim.engines.sample.scenario_draws import (
     thresholds,
 )
 from debtsim.model.specification import LinkedFactorModel
-from debtsim.risk import level_key, value_at_risk
+from debtsim.risk import level_key, value_at_risk, weighted_sample_measures
 
 __all__ = [
     "BATCHES",
@@ -98,10 +98,8 @@ __all__ = [
     "TiltPlan",
     "plan_importance",
     "plan_tilt",
-    "tail_measures",
 ]
 
-FloatArray = NDArray[np.float64]
 
 #: Share of scenarios drawn from the model itself when importance sampling is on.
 DEFAULT_PLAIN_SHARE = 0.4
@@ -377,39 +375,6 @@ def plan_importance(
 
 
 # ------------------------------------------------------------------- estimates
-def tail_measures(
-    losses: FloatArray, weights: FloatArray, levels: Sequence[float]
-) -> tuple[FloatArray, FloatArray]:
-    """VaR and ES (Acerbi–Tasche) of the self-normalised weighted empirical law.
-
-    Parameters
-    ----------
-    losses, weights : ndarray, shape (k,)
-        Sampled losses and their weights (positive total).
-    levels : sequence of float
-        Confidence levels in (0, 1).
-
-    Returns
-    -------
-    var, es : ndarray, shape (len(levels),)
-
-    """
-    order = np.argsort(losses, kind="stable")
-    x = losses[order]
-    w = weights[order] / weights.sum()
-    cdf = np.cumsum(w)
-    var = np.empty(len(levels))
-    es = np.empty(len(levels))
-    for j, level in enumerate(levels):
-        k = min(int(np.searchsorted(cdf, level - 1e-12, side="left")), x.size - 1)
-        v = x[k]
-        above = x > v
-        below = 1.0 - float(w[above].sum())
-        var[j] = v
-        es[j] = (float(w[above] @ x[above]) + v * (below - level)) / (1.0 - level)
-    return var, es
-
-
 def _batch_standard_errors(
     scen: ScenarioSet, levels: Sequence[float], batches: int
 ) -> tuple[FloatArray, FloatArray]:
@@ -426,7 +391,7 @@ def _batch_standard_errors(
         w = scen.weights[sl]
         if w.sum() <= 0:
             continue
-        v, e = tail_measures(scen.losses[sl], w, levels)
+        v, e = weighted_sample_measures(scen.losses[sl], w, levels)
         vs.append(v)
         es.append(e)
     if len(vs) < 2:
@@ -558,7 +523,9 @@ class SampleEngine(Engine):
         return sampler.run(self.samples, root, progress), plan, seed_value
 
     # ------------------------------------------------------------------ public
-    def run(self, model: LinkedFactorModel, *, progress: ProgressHook | None = None) -> LossDistribution:
+    def run(
+        self, model: LinkedFactorModel, *, progress: ProgressHook | None = None
+    ) -> LossDistribution:
         """Sample the loss law of ``model``.
 
         Parameters

@@ -46,6 +46,7 @@ from numpy.polynomial import Chebyshev
 from numpy.typing import NDArray
 from scipy.special import expit, logit, logsumexp, ndtr, ndtri
 
+from debtsim._typing import FloatArray
 from debtsim.model.specification import LinkedFactorModel
 
 __all__ = [
@@ -59,7 +60,6 @@ __all__ = [
     "thresholds",
 ]
 
-FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
 
 #: Scenarios per independent random stream (fixed, so results do not depend on chunking).

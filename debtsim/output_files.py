@@ -16,7 +16,7 @@ import math
 import os
 import secrets
 import shutil
-from collections.abc import Callable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from importlib import metadata
 from pathlib import Path
 from typing import Any
@@ -297,14 +297,14 @@ def write_loss_distribution(path: Path, losses: np.ndarray, probabilities: np.nd
     path.write_text("\n".join(lines) + "\n", encoding="utf-8")
 
 
-def write_csv(path: Path, header: Sequence[str], rows: Sequence[Sequence[Any]]) -> None:
-    """Write a CSV with ``header``; floats in round-trip precision, None as empty."""
+def write_csv(path: Path, header: Sequence[str], rows: Iterable[Sequence[Any]]) -> None:
+    """Write a CSV with ``header``; floats in round-trip precision, None and NaN as empty."""
 
     def cell(v: Any) -> Any:
         if v is None:
             return ""
         if isinstance(v, (float, np.floating)):
-            return _number(v)
+            return "" if math.isnan(v) else _number(v)
         if isinstance(v, np.integer):
             return int(v)
         return v

@@ -66,7 +66,9 @@ def timed(engine: SampleEngine, model: LinkedFactorModel):
     return law, time.perf_counter() - t0, time.process_time() - c0
 
 
-def variance_table(model: LinkedFactorModel, label: str, seeds: int, samples: int, workers: int) -> None:
+def variance_table(
+    model: LinkedFactorModel, label: str, seeds: int, samples: int, workers: int
+) -> None:
     names = ("EL", "VaR 0.99", "ES 0.99", "VaR 0.999", "ES 0.999")
     results: dict[bool, np.ndarray] = {}
     seconds: dict[bool, float] = {}

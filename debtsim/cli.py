@@ -63,7 +63,7 @@ def progress_bars(enabled: bool) -> Iterator[Callable[[str], Callable[[int, int]
         yield lambda stage: None
         return
     from rich.console import Console
-    from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
+    from rich.progress import BarColumn, Progress, TaskID, TextColumn, TimeRemainingColumn
 
     console = Console(stderr=True)
     with Progress(
@@ -77,7 +77,7 @@ def progress_bars(enabled: bool) -> Iterator[Callable[[str], Callable[[int, int]
 
         def factory(stage: str) -> Callable[[int, int], None]:
             started = time.monotonic()
-            task: list[int] = []
+            task: list[TaskID] = []
 
             def hook(done: int, total: int) -> None:
                 if not task:

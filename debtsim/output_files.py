@@ -304,7 +304,7 @@ def write_csv(path: Path, header: Sequence[str], rows: Iterable[Sequence[Any]]) 
         if v is None:
             return ""
         if isinstance(v, (float, np.floating)):
-            return "" if math.isnan(v) else _number(v)
+            return "" if math.isnan(v) else _number(float(v))
         if isinstance(v, np.integer):
             return int(v)
         return v

@@ -10,7 +10,6 @@ from scipy.special import comb
 
 from debtsim.book.records import Book, Link, Obligor
 from debtsim.engines import make_engine
-from debtsim.options import RunOptions
 from debtsim.engines.circuit import engine as circuit_engine
 from debtsim.engines.circuit.builder import (
     MAX_CONTROLS,
@@ -24,6 +23,7 @@ from debtsim.engines.circuit.engine import CircuitEngine
 from debtsim.errors import EngineRefusedError
 from debtsim.model.factor_grid import gauss_hermite
 from debtsim.model.specification import LinkedFactorModel, conditional_default_probability
+from debtsim.options import RunOptions
 from tests.reference import enumerate_law
 
 # (ead, pd, lgd, R) per obligor; links as (creditor, debtor, q) on indices.

@@ -13,7 +13,6 @@ from scipy.stats import binom, norm
 from debtsim.book.records import Book, Link, Obligor
 from debtsim.distribution import LossDistribution
 from debtsim.engines import make_engine
-from debtsim.options import RunOptions
 from debtsim.engines.sample.engine import SampleEngine, plan_importance
 from debtsim.engines.sample.scenario_draws import (
     _CAP,
@@ -24,6 +23,7 @@ from debtsim.engines.sample.scenario_draws import (
 )
 from debtsim.model.factor_grid import gauss_hermite
 from debtsim.model.specification import LinkedFactorModel
+from debtsim.options import RunOptions
 from debtsim.risk import expected_shortfall, level_key, value_at_risk
 from tests.reference import enumerate_law
 

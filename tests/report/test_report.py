@@ -17,6 +17,8 @@ from debtsim.errors import DebtsimError, OutputError
 from debtsim.link_effects import contagion_effect, link_transmission, obligor_contagion, rank_links
 from debtsim.model.factor_grid import gauss_hermite
 from debtsim.model.specification import LinkedFactorModel
+from debtsim.options import RunOptions
+from debtsim.output_files import jsonable
 from debtsim.report import (
     CAUTION,
     OUTPUT_FILES,
@@ -25,10 +27,7 @@ from debtsim.report import (
     summary_dict,
     write_run,
 )
-from debtsim.output_files import jsonable
-from debtsim.runner import OBLIGOR_COLUMNS
-from debtsim.options import RunOptions
-from debtsim.runner import RunResult
+from debtsim.runner import OBLIGOR_COLUMNS, RunResult
 from tests.reference import enumerate_law
 
 LEVELS = (0.99, 0.999)

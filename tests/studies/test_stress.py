@@ -14,9 +14,9 @@ from debtsim.book.loader import load_book
 from debtsim.cli import app
 from debtsim.options import RunOptions
 from debtsim.runner import run_book
+from debtsim.studies.execution import Execution
 from debtsim.studies.scenarios import Scenario, apply_scenario
 from debtsim.studies.stress import run_stress
-from debtsim.studies.execution import Execution
 
 ROOT = Path(__file__).resolve().parents[2]
 HARBOUR = ROOT / "scenarios" / "harbour_small.yaml"
@@ -179,7 +179,9 @@ def test_stress_on_demo_book(tmp_path: Path) -> None:
     """The bundled demo book and its scenario file run end to end."""
     out = tmp_path / "hs"
     result = CliRunner().invoke(
-        app, ["stress", str(HARBOUR), str(HARBOUR_STRESS), "--out", str(out), "--no-compare-without-links"]
+        app,
+        ["stress", str(HARBOUR), str(HARBOUR_STRESS), "--out", str(out),
+         "--no-compare-without-links"],
     )
     assert result.exit_code == 0, result.output
     table = pd.read_csv(out / "scenarios.csv")

@@ -22,11 +22,11 @@ from debtsim.book.records import Book, Link, Obligor
 from debtsim.cli import app
 from debtsim.errors import OutputError
 from debtsim.options import RunOptions
-from debtsim.runner import run_book
-from debtsim.studies.scenarios import Scenario, apply_scenario
 from debtsim.report.study_folders import write_sweep
 from debtsim.risk import measure_columns
+from debtsim.runner import run_book
 from debtsim.studies.execution import Execution
+from debtsim.studies.scenarios import Scenario, apply_scenario
 from debtsim.studies.sweep import (
     GridAxis,
     GridError,

@@ -17,13 +17,15 @@ from typer.testing import CliRunner
 import debtsim
 from debtsim.cli import app
 
-ROOT = Path(__file__).resolve().parents[1]
-HARBOUR = ROOT / "scenarios" / "harbour_small.yaml"
+from tests.conftest import DEMO_BOOKS, REPO_ROOT
+
+ROOT = REPO_ROOT
+HARBOUR = DEMO_BOOKS["harbour_small"]
 
 
 @pytest.fixture(scope="module")
-def result() -> debtsim.RunResult:
-    return debtsim.run(debtsim.load_book(HARBOUR), engine="exact")
+def result(harbour_book: debtsim.Book) -> debtsim.RunResult:
+    return debtsim.run(harbour_book, engine="exact")
 
 
 def test_readme_example_runs(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
@@ -95,10 +97,9 @@ def test_frames(result: debtsim.RunResult) -> None:
     assert isinstance(result.diagnostics, dict) or hasattr(result.diagnostics, "get")
 
 
-def test_no_links_comparison_reuses_the_law() -> None:
+def test_no_links_comparison_reuses_the_law(harbour_book: debtsim.Book) -> None:
     """A book without links is its own comparison: the same figures, computed once."""
-    book = debtsim.load_book(HARBOUR)
-    plain = dataclasses.replace(book, links=())
+    plain = dataclasses.replace(harbour_book, links=())
     r = debtsim.run(plain, engine="exact")
     assert r.copula_distribution is r.loss_distribution
     assert r.copula_measures == r.measures

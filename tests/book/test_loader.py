@@ -9,6 +9,7 @@ import os
 import tempfile
 import textwrap
 from pathlib import Path
+from typing import Any
 
 import pytest
 import yaml
@@ -16,6 +17,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from debtsim.book import loader as schema
+from debtsim.book import yaml_reader
 from debtsim.book.loader import (
     BOOK_FIELDS,
     LINK_FIELDS,
@@ -563,19 +565,19 @@ def test_unreadable_files(in_tmp: Path, monkeypatch: pytest.MonkeyPatch) -> None
     """An OS error while reading the book or a CSV becomes a problem with its reason."""
     write(in_tmp, "b.yaml", "obligors: o.csv\n")
     write(in_tmp, "o.csv", HEADER)
-    real = Path.read_bytes
+    real = open
 
-    def refuse(self: Path) -> bytes:
-        if self.name in denied:
+    def refuse(name: str, *args: Any, **kwargs: Any) -> Any:
+        if Path(name).name in denied:
             raise PermissionError(13, "Permission denied")
-        return real(self)
+        return real(name, *args, **kwargs)
 
-    monkeypatch.setattr(Path, "read_bytes", refuse)
+    monkeypatch.setattr(yaml_reader, "open", refuse, raising=False)
     denied = {"b.yaml"}
-    assert problems("b.yaml") == ["b.yaml: cannot read book file: Permission denied"]
+    assert problems("b.yaml") == ["b.yaml: cannot read book file: permission denied"]
     denied = {"o.csv"}
     assert problems("b.yaml") == [
-        "b.yaml:1: obligors: cannot read CSV file o.csv: Permission denied"
+        "b.yaml:1: obligors: cannot read CSV file o.csv: permission denied"
     ]
 
 
@@ -597,7 +599,7 @@ def test_unexpected_failure_becomes_book_error(
     def boom(*args: object) -> None:
         raise ValueError("surprise")
 
-    monkeypatch.setattr(schema, "_compose", boom)
+    monkeypatch.setattr(schema, "compose_yaml", boom)
     assert problems("b.yaml") == ["b.yaml: cannot read the book: ValueError: surprise"]
 
 

@@ -85,7 +85,6 @@ _BOOK_SUFFIXES = (".yaml", ".yml")
 _SUGGEST_LIMIT = 5000  # suggest close ids only for books up to this size
 
 
-
 def _read_id(raw: Raw) -> tuple[str | None, str | None]:
     """Return ``(id, None)`` or ``(None, message)``."""
     value = raw.value
@@ -94,6 +93,8 @@ def _read_id(raw: Raw) -> tuple[str | None, str | None]:
     if isinstance(value, str):
         if value.strip() == "":
             return None, f"must be a non-empty string, got {shown(raw)}"
+        if not value.isprintable():
+            return None, f"must not hold control characters, got {quote(value)}"
         return value, None
     if isinstance(value, bool) or isinstance(value, float):
         return None, f"must be a string, got {raw.text} (put it in quotes to use it as an id)"
@@ -108,6 +109,8 @@ def _read_text(raw: Raw) -> tuple[str, str | None]:
     if raw.value is None:
         return "", None
     if isinstance(raw.value, str):
+        if "\x00" in raw.value:
+            return "", f"must not hold a NUL byte, got {quote(raw.value)}"
         return raw.value, None
     return raw.text, None
 
@@ -120,7 +123,7 @@ class _Entry:
     only when the fast path of a builder cannot accept the row as it stands.
     """
 
-    __slots__ = ("_fields", "cells", "file", "index", "line", "section")
+    __slots__ = ("_fields", "cells", "file", "ident", "index", "line", "section")
 
     def __init__(
         self,
@@ -133,6 +136,7 @@ class _Entry:
     ) -> None:
         self._fields = fields
         self.cells = cells
+        self.ident: str | None = None
         self.line = line
         self.section = section
         self.index = index
@@ -140,8 +144,10 @@ class _Entry:
 
     @property
     def path(self) -> str:
-        """Field path of the record, e.g. ``obligors[3]``."""
-        return f"{self.section}[{self.index}]"
+        """Field path of the record, e.g. ``obligors[3] (id 'H4')``, once its id is known."""
+        if self.ident is None:
+            return f"{self.section}[{self.index}]"
+        return f"{self.section}[{self.index}] (id {quote(self.ident)})"
 
     @property
     def fields(self) -> dict[str, Raw]:
@@ -251,7 +257,8 @@ def _fast_obligor(cells: dict[str, str], line: int) -> Obligor | None:
     if ident and 0 < ead <= MAX_EAD and 0 < pd < 1 and 0 <= lgd <= 1 and 0 <= rho < 1:
         name = cells.get("name", "").strip()
         sector = cells.get("sector", "").strip()
-        return Obligor(ident, ead, pd, lgd, rho, name, sector, line)
+        if ident.isprintable() and "\x00" not in name + sector:
+            return Obligor(ident, ead, pd, lgd, rho, name, sector, line)
     return None
 
 
@@ -265,7 +272,14 @@ def _fast_link(cells: dict[str, str], line: int) -> Link | None:
         amount = float(text) if text else None
     except ValueError:
         return None
-    if creditor and debtor and 0 <= contagion <= 1 and (amount is None or 0 <= amount < math.inf):
+    plain = creditor.isprintable() and debtor.isprintable()
+    if (
+        creditor
+        and debtor
+        and plain
+        and 0 <= contagion <= 1
+        and (amount is None or 0 <= amount < math.inf)
+    ):
         return Link(creditor, debtor, contagion, amount, line)
     return None
 
@@ -278,6 +292,7 @@ def _build_obligor(entry: _Entry, sink: ProblemSink) -> tuple[str | None, Obligo
             return fast.id, fast
     before = len(sink.problems)
     ident = _required_id(entry, "id", sink)
+    entry.ident = ident
     name = _optional_text(entry, "name", sink)
     sector = _optional_text(entry, "sector", sink)
     ead = _check_range(entry, "ead", sink, _ead_test)
@@ -384,18 +399,23 @@ class _Yaml(YamlReader):
             items = self.mapping(item, path)
             if items is None:
                 continue
-            fields: dict[str, Raw] = {}
-            for key, (key_node, value_node) in items.items():
+            fields = {
+                key: self.raw(value_node)
+                for key, (_key_node, value_node) in items.items()
+                if key in allowed
+            }
+            entry = _Entry(fields, line, section, k, self.file)
+            if section == "obligors" and "id" in fields:
+                entry.ident = _read_id(fields["id"])[0]
+            for key, (key_node, _value_node) in items.items():
                 if key not in allowed:
                     self.sink.add(
                         self.file,
                         key_node.start_mark.line + 1,
-                        join_field(path, key),
+                        join_field(entry.path, key),
                         unknown_field_message(key, allowed),
                     )
-                    continue
-                fields[key] = self.raw(value_node)
-            yield _Entry(fields, line, section, k, self.file)
+            yield entry
 
 
 # ---------------------------------------------------------------- files
@@ -434,6 +454,16 @@ def _csv_entries(
         return None, False
     header_line, header = rows[0]
     columns = [c.strip() for c in header]
+    if not set(columns) & set(allowed):
+        # not a table of ours: say so without quoting a line of a file that may be private
+        sink.add(
+            shown,
+            header_line,
+            section,
+            f"the first line is not a header of known columns (expected {','.join(required)}, "
+            "...); is this the right file?",
+        )
+        return None, False
     problems_before = len(sink.problems)
     seen: set[str] = set()
     for name in columns:

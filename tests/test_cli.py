@@ -93,8 +93,8 @@ def test_levels_option(runner: CliRunner, in_tmp: Path) -> None:
 @pytest.mark.parametrize(
     ("text", "expected"),
     [
-        (GOOD.replace("pd: 0.02", "pd: 1.5"), "mini.yaml:4: obligors[0].pd:"),
-        (GOOD.replace("id: C", "id: A"), "obligors[2].id"),
+        (GOOD.replace("pd: 0.02", "pd: 1.5"), "mini.yaml:4: obligors[0] (id 'A').pd:"),
+        (GOOD.replace("id: C", "id: A"), "obligors[2] (id 'A').id"),
         (GOOD.replace("debtor: B", "debtor: Z"), "links[0].debtor"),
         (GOOD.replace("debtor: B", "debtor: A"), "links[0]"),
         (GOOD.replace("asset_correlation: 0.1}", "asset_correlation: 0.1, rating: AA}"),

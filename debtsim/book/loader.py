@@ -21,20 +21,31 @@ else escapes :func:`load_book`: any unexpected failure while reading becomes a
 from __future__ import annotations
 
 import csv
-import difflib
 import io
 import math
 import os
-from collections.abc import Callable, Iterable, Iterator
+from collections.abc import Callable, Iterator
 from pathlib import Path
-from typing import Any, NamedTuple
+from typing import Any
 
-import yaml
-from yaml.constructor import SafeConstructor
-from yaml.nodes import MappingNode, Node, ScalarNode, SequenceNode
+from yaml.nodes import MappingNode, Node, SequenceNode
 
 from debtsim.book.records import DEFAULT_FACTOR_QUBITS, Book, Link, Obligor
-from debtsim.errors import BookError, Problem
+from debtsim.book.yaml_reader import (
+    ProblemSink,
+    Raw,
+    YamlReader,
+    compose_yaml,
+    is_absent,
+    join_field,
+    number,
+    quote,
+    read_text_file,
+    shown,
+    suggest,
+    unknown_field_message,
+)
+from debtsim.errors import BookError
 
 __all__ = [
     "BOOK_FIELDS",
@@ -71,110 +82,19 @@ MODEL_FIELDS: tuple[str, ...] = ("factor_qubits",)
 FACTOR_QUBITS_RANGE: tuple[int, int] = (1, 10)
 
 _BOOK_SUFFIXES = (".yaml", ".yml")
-_MAX_SHOWN = 60  # longest value text quoted in a message
 _SUGGEST_LIMIT = 5000  # suggest close ids only for books up to this size
 
-try:  # libyaml is much faster on large inline books
-    _YamlLoader: Any = yaml.CSafeLoader
-except AttributeError:  # pragma: no cover - depends on the PyYAML build
-    _YamlLoader = yaml.SafeLoader
 
-
-# ---------------------------------------------------------------- values
-class _Raw(NamedTuple):
-    """One value as read from YAML or CSV, before validation.
-
-    ``kind`` is ``"scalar"`` (a YAML scalar; ``value`` is its Python value),
-    ``"cell"`` (a CSV cell; ``value`` is the stripped text), ``"tagged"`` (a
-    YAML scalar with a tag the safe loader refuses; ``text`` is the tag),
-    ``"list"`` or ``"mapping"``.  ``text`` is the value as written; ``line``
-    is 1-based.
-    """
-
-    kind: str
-    value: Any
-    text: str
-    line: int
-
-
-def _quote(text: str) -> str:
-    if len(text) > _MAX_SHOWN:
-        text = text[: _MAX_SHOWN - 3] + "..."
-    return repr(text)
-
-
-def _reads_as_number(text: str) -> bool:
-    try:
-        float(text)
-    except ValueError:
-        return False
-    return True
-
-
-def _shown(raw: _Raw) -> str:
-    """How a value appears after ``got`` in a message."""
-    if raw.kind == "list":
-        return "a list"
-    if raw.kind == "mapping":
-        return "a mapping"
-    if raw.kind == "tagged":
-        return f"a value tagged {raw.text.replace('tag:yaml.org,2002:', '!!')}"
-    if raw.kind == "cell":
-        if raw.text == "":
-            return "an empty cell"
-        return raw.text if _reads_as_number(raw.text) else _quote(raw.text)
-    value = raw.value
-    if value is None:
-        return "nothing" if raw.text in ("", "~") else raw.text
-    if isinstance(value, str):
-        stripped = value.strip()
-        if stripped and _reads_as_number(stripped):
-            return stripped
-        return _quote(value)
-    return raw.text if len(raw.text) <= _MAX_SHOWN else _quote(raw.text)
-
-
-def _is_absent(raw: _Raw) -> bool:
-    """Tell whether a value is a YAML null or an empty CSV cell (a field left out)."""
-    if raw.kind == "cell":
-        return raw.text == ""
-    return raw.kind == "scalar" and raw.value is None
-
-
-def _number(raw: _Raw) -> float | str:
-    """Return the value as a finite float, or an error message."""
-    value = raw.value
-    if value is None or isinstance(value, bool):
-        return f"must be a number, got {_shown(raw)}"
-    if isinstance(value, int | float):
-        try:
-            number = float(value)
-        except OverflowError:
-            number = math.inf
-    elif isinstance(value, str):
-        text = value.strip()
-        try:
-            number = float(text)
-        except ValueError:
-            hint = ""
-            if text.endswith("%") and _reads_as_number(text[:-1]):
-                hint = f" (write fractions, e.g. {float(text[:-1]) / 100:g})"
-            return f"must be a number, got {_shown(raw)}{hint}"
-    else:
-        return f"must be a number, got {_shown(raw)}"
-    if not math.isfinite(number):
-        return f"must be a finite number, got {_shown(raw)}"
-    return number
-
-
-def _read_id(raw: _Raw) -> tuple[str | None, str | None]:
+def _read_id(raw: Raw) -> tuple[str | None, str | None]:
     """Return ``(id, None)`` or ``(None, message)``."""
     value = raw.value
     if value is None:
-        return None, f"must be a non-empty string, got {_shown(raw)}"
+        return None, f"must be a non-empty string, got {shown(raw)}"
     if isinstance(value, str):
         if value.strip() == "":
-            return None, f"must be a non-empty string, got {_shown(raw)}"
+            return None, f"must be a non-empty string, got {shown(raw)}"
+        if not value.isprintable():
+            return None, f"must not hold control characters, got {quote(value)}"
         return value, None
     if isinstance(value, bool) or isinstance(value, float):
         return None, f"must be a string, got {raw.text} (put it in quotes to use it as an id)"
@@ -182,54 +102,17 @@ def _read_id(raw: _Raw) -> tuple[str | None, str | None]:
     return raw.text, None
 
 
-def _read_text(raw: _Raw) -> tuple[str, str | None]:
+def _read_text(raw: Raw) -> tuple[str, str | None]:
     """Return optional free text as ``(text, None)`` or ``("", message)``."""
     if raw.kind not in ("scalar", "cell"):
-        return "", f"must be text, got {_shown(raw)}"
+        return "", f"must be text, got {shown(raw)}"
     if raw.value is None:
         return "", None
     if isinstance(raw.value, str):
+        if "\x00" in raw.value:
+            return "", f"must not hold a NUL byte, got {quote(raw.value)}"
         return raw.value, None
     return raw.text, None
-
-
-# ---------------------------------------------------------------- problems
-class _Sink:
-    """Collects problems, remembering the order in which files were first seen."""
-
-    def __init__(self) -> None:
-        self.problems: list[Problem] = []
-        self._rank: dict[str, int] = {}
-
-    def add(self, file: str, line: int | None, field: str, message: str) -> None:
-        self._rank.setdefault(file, len(self._rank))
-        # one problem, one line: a key may hold a line break
-        field = field.replace("\r", "\\r").replace("\n", "\\n")
-        self.problems.append(Problem(file, line, field, message))
-
-    def sorted(self) -> list[Problem]:
-        return sorted(
-            self.problems,
-            key=lambda p: (self._rank.get(p.file, 0), p.line if p.line is not None else 0),
-        )
-
-
-def _suggest(name: str, choices: Iterable[str]) -> str | None:
-    options = list(choices)
-    lowered = {c.lower(): c for c in options}
-    match = difflib.get_close_matches(name.lower(), list(lowered), n=1, cutoff=0.6)
-    return lowered[match[0]] if match else None
-
-
-def _unknown_field_message(name: str, allowed: tuple[str, ...], what: str = "field") -> str:
-    guess = _suggest(name, allowed)
-    if guess is not None:
-        return f"unknown {what} (did you mean '{guess}'?)"
-    return f"unknown {what} (allowed: {', '.join(allowed)})"
-
-
-def _join(prefix: str, name: str) -> str:
-    return f"{prefix}.{name}" if prefix else name
 
 
 # ---------------------------------------------------------------- records
@@ -240,11 +123,11 @@ class _Entry:
     only when the fast path of a builder cannot accept the row as it stands.
     """
 
-    __slots__ = ("_fields", "cells", "file", "index", "line", "section")
+    __slots__ = ("_fields", "cells", "file", "ident", "index", "line", "section")
 
     def __init__(
         self,
-        fields: dict[str, _Raw] | None,
+        fields: dict[str, Raw] | None,
         line: int,
         section: str,
         index: int,
@@ -253,6 +136,7 @@ class _Entry:
     ) -> None:
         self._fields = fields
         self.cells = cells
+        self.ident: str | None = None
         self.line = line
         self.section = section
         self.index = index
@@ -260,17 +144,19 @@ class _Entry:
 
     @property
     def path(self) -> str:
-        """Field path of the record, e.g. ``obligors[3]``."""
-        return f"{self.section}[{self.index}]"
+        """Field path of the record, e.g. ``obligors[3] (id 'H4')``, once its id is known."""
+        if self.ident is None:
+            return f"{self.section}[{self.index}]"
+        return f"{self.section}[{self.index}] (id {quote(self.ident)})"
 
     @property
-    def fields(self) -> dict[str, _Raw]:
+    def fields(self) -> dict[str, Raw]:
         """Field name -> raw value."""
         if self._fields is None:
             assert self.cells is not None
             line = self.line
             self._fields = {
-                name: _Raw("cell", cell.strip(), cell.strip(), line)
+                name: Raw("cell", cell.strip(), cell.strip(), line)
                 for name, cell in self.cells.items()
             }
         return self._fields
@@ -279,23 +165,23 @@ class _Entry:
 def _check_range(
     entry: _Entry,
     name: str,
-    sink: _Sink,
+    sink: ProblemSink,
     test: Callable[[float], str | None],
 ) -> float | None:
     """Validate a required numeric field; report and return None on failure."""
     raw = entry.fields.get(name)
     if raw is None:
-        sink.add(entry.file, entry.line, _join(entry.path, name), "is required but missing")
+        sink.add(entry.file, entry.line, join_field(entry.path, name), "is required but missing")
         return None
-    number = _number(raw)
-    if isinstance(number, str):
-        sink.add(entry.file, raw.line, _join(entry.path, name), number)
+    value = number(raw)
+    if isinstance(value, str):
+        sink.add(entry.file, raw.line, join_field(entry.path, name), value)
         return None
-    message = test(number)
+    message = test(value)
     if message is not None:
-        sink.add(entry.file, raw.line, _join(entry.path, name), f"{message}, got {_shown(raw)}")
+        sink.add(entry.file, raw.line, join_field(entry.path, name), f"{message}, got {shown(raw)}")
         return None
-    return number
+    return value
 
 
 #: Largest exposure accepted: far above any single real exposure in any currency, and far
@@ -337,24 +223,24 @@ def _amount_test(x: float) -> str | None:
     return "must be at least 0" if x < 0 else None
 
 
-def _required_id(entry: _Entry, name: str, sink: _Sink) -> str | None:
+def _required_id(entry: _Entry, name: str, sink: ProblemSink) -> str | None:
     raw = entry.fields.get(name)
     if raw is None:
-        sink.add(entry.file, entry.line, _join(entry.path, name), "is required but missing")
+        sink.add(entry.file, entry.line, join_field(entry.path, name), "is required but missing")
         return None
     value, message = _read_id(raw)
     if message is not None:
-        sink.add(entry.file, raw.line, _join(entry.path, name), message)
+        sink.add(entry.file, raw.line, join_field(entry.path, name), message)
     return value
 
 
-def _optional_text(entry: _Entry, name: str, sink: _Sink) -> str:
+def _optional_text(entry: _Entry, name: str, sink: ProblemSink) -> str:
     raw = entry.fields.get(name)
     if raw is None:
         return ""
     text, message = _read_text(raw)
     if message is not None:
-        sink.add(entry.file, raw.line, _join(entry.path, name), message)
+        sink.add(entry.file, raw.line, join_field(entry.path, name), message)
     return text
 
 
@@ -371,7 +257,8 @@ def _fast_obligor(cells: dict[str, str], line: int) -> Obligor | None:
     if ident and 0 < ead <= MAX_EAD and 0 < pd < 1 and 0 <= lgd <= 1 and 0 <= rho < 1:
         name = cells.get("name", "").strip()
         sector = cells.get("sector", "").strip()
-        return Obligor(ident, ead, pd, lgd, rho, name, sector, line)
+        if ident.isprintable() and "\x00" not in name + sector:
+            return Obligor(ident, ead, pd, lgd, rho, name, sector, line)
     return None
 
 
@@ -385,12 +272,19 @@ def _fast_link(cells: dict[str, str], line: int) -> Link | None:
         amount = float(text) if text else None
     except ValueError:
         return None
-    if creditor and debtor and 0 <= contagion <= 1 and (amount is None or 0 <= amount < math.inf):
+    plain = creditor.isprintable() and debtor.isprintable()
+    if (
+        creditor
+        and debtor
+        and plain
+        and 0 <= contagion <= 1
+        and (amount is None or 0 <= amount < math.inf)
+    ):
         return Link(creditor, debtor, contagion, amount, line)
     return None
 
 
-def _build_obligor(entry: _Entry, sink: _Sink) -> tuple[str | None, Obligor | None]:
+def _build_obligor(entry: _Entry, sink: ProblemSink) -> tuple[str | None, Obligor | None]:
     """Validate one obligor; return its id (if readable) and the record (if valid)."""
     if entry.cells is not None:
         fast = _fast_obligor(entry.cells, entry.line)
@@ -398,6 +292,7 @@ def _build_obligor(entry: _Entry, sink: _Sink) -> tuple[str | None, Obligor | No
             return fast.id, fast
     before = len(sink.problems)
     ident = _required_id(entry, "id", sink)
+    entry.ident = ident
     name = _optional_text(entry, "name", sink)
     sector = _optional_text(entry, "sector", sink)
     ead = _check_range(entry, "ead", sink, _ead_test)
@@ -422,7 +317,7 @@ def _build_obligor(entry: _Entry, sink: _Sink) -> tuple[str | None, Obligor | No
 
 def _build_link(
     entry: _Entry,
-    sink: _Sink,
+    sink: ProblemSink,
     known: dict[str, int] | None,
     index: dict[tuple[str, str], int],
 ) -> Link | None:
@@ -444,23 +339,23 @@ def _build_link(
         ends[side] = ident
         if ident is not None and known is not None and ident not in known:
             raw = entry.fields[side]
-            message = f"unknown obligor id {_quote(ident)}"
-            guess = _suggest(ident, known) if len(known) <= _SUGGEST_LIMIT else None
+            message = f"unknown obligor id {quote(ident)}"
+            guess = suggest(ident, known) if len(known) <= _SUGGEST_LIMIT else None
             if guess is not None:
-                message += f" (did you mean {_quote(guess)}?)"
-            sink.add(entry.file, raw.line, _join(entry.path, side), message)
+                message += f" (did you mean {quote(guess)}?)"
+            sink.add(entry.file, raw.line, join_field(entry.path, side), message)
     creditor, debtor = ends["creditor"], ends["debtor"]
     if creditor is not None and creditor == debtor:
         sink.add(
             entry.file,
             entry.fields["debtor"].line,
-            _join(entry.path, "debtor"),
-            f"self-link: creditor and debtor are both {_quote(creditor)}",
+            join_field(entry.path, "debtor"),
+            f"self-link: creditor and debtor are both {quote(creditor)}",
         )
     contagion = _check_range(entry, "contagion", sink, _unit_test)
     amount: float | None = None
     raw_amount = entry.fields.get("amount")
-    if raw_amount is not None and not _is_absent(raw_amount):
+    if raw_amount is not None and not is_absent(raw_amount):
         amount = _check_range(entry, "amount", sink, _amount_test)
     if creditor is not None and debtor is not None and creditor != debtor:
         key = (creditor, debtor)
@@ -469,8 +364,8 @@ def _build_link(
                 entry.file,
                 entry.line,
                 entry.path,
-                f"duplicate link: creditor {_quote(creditor)} already has a claim on debtor "
-                f"{_quote(debtor)} (first at line {index[key]})",
+                f"duplicate link: creditor {quote(creditor)} already has a claim on debtor "
+                f"{quote(debtor)} (first at line {index[key]})",
             )
         else:
             index[key] = entry.line
@@ -487,56 +382,8 @@ def _build_link(
 
 
 # ---------------------------------------------------------------- YAML
-class _Yaml:
-    """Walks a composed YAML node tree, turning scalars into values."""
-
-    def __init__(self, file: str, sink: _Sink) -> None:
-        self.file = file
-        self.sink = sink
-        self.constructor = SafeConstructor()
-
-    def raw(self, node: Node) -> _Raw:
-        line = node.start_mark.line + 1
-        if isinstance(node, MappingNode):
-            return _Raw("mapping", None, "", line)
-        if isinstance(node, SequenceNode):
-            return _Raw("list", None, "", line)
-        assert isinstance(node, ScalarNode)
-        try:
-            value = self.constructor.construct_object(node, deep=True)
-        except yaml.YAMLError:  # an unknown tag such as !!python/object
-            return _Raw("tagged", None, str(node.tag), line)
-        return _Raw("scalar", value, str(node.value), line)
-
-    def mapping(self, node: MappingNode, path: str) -> dict[str, tuple[Node, Node]] | None:
-        """Key -> (key node, value node), reporting repeated and non-text keys.
-
-        ``<<`` merge keys are resolved as the safe loader does: a key written
-        in the mapping itself overrides a merged one without complaint.  None
-        (after reporting) when a merge is impossible.
-        """
-        explicit = {id(k) for k, _ in node.value if k.tag != "tag:yaml.org,2002:merge"}
-        try:
-            self.constructor.flatten_mapping(node)
-        except yaml.MarkedYAMLError as exc:
-            mark = exc.problem_mark or node.start_mark
-            self.sink.add(self.file, mark.line + 1, path, f"cannot merge: {exc.problem}")
-            return None
-        out: dict[str, tuple[Node, Node]] = {}
-        for key_node, value_node in node.value:
-            line = key_node.start_mark.line + 1
-            if not isinstance(key_node, ScalarNode):
-                self.sink.add(self.file, line, path, "field names must be plain text")
-                continue
-            key = str(key_node.value)
-            if key in out and id(out[key][0]) in explicit and id(key_node) in explicit:
-                first = out[key][0].start_mark.line + 1
-                self.sink.add(
-                    self.file, line, _join(path, key), f"given twice (first at line {first})"
-                )
-                continue
-            out[key] = (key_node, value_node)
-        return out
+class _Yaml(YamlReader):
+    """The book's reader: also turns list items into obligor or link entries."""
 
     def entries(
         self, node: SequenceNode, section: str, allowed: tuple[str, ...]
@@ -546,79 +393,37 @@ class _Yaml:
             path = f"{section}[{k}]"
             line = item.start_mark.line + 1
             if not isinstance(item, MappingNode):
-                shown = _shown(self.raw(item))
-                self.sink.add(self.file, line, path, f"must be a mapping of fields, got {shown}")
+                got = shown(self.raw(item))
+                self.sink.add(self.file, line, path, f"must be a mapping of fields, got {got}")
                 continue
             items = self.mapping(item, path)
             if items is None:
                 continue
-            fields: dict[str, _Raw] = {}
-            for key, (key_node, value_node) in items.items():
+            fields = {
+                key: self.raw(value_node)
+                for key, (_key_node, value_node) in items.items()
+                if key in allowed
+            }
+            entry = _Entry(fields, line, section, k, self.file)
+            if section == "obligors" and "id" in fields:
+                entry.ident = _read_id(fields["id"])[0]
+            for key, (key_node, _value_node) in items.items():
                 if key not in allowed:
                     self.sink.add(
                         self.file,
                         key_node.start_mark.line + 1,
-                        _join(path, key),
-                        _unknown_field_message(key, allowed),
+                        join_field(entry.path, key),
+                        unknown_field_message(key, allowed),
                     )
-                    continue
-                fields[key] = self.raw(value_node)
-            yield _Entry(fields, line, section, k, self.file)
-
-
-def _compose(text: str, file: str, sink: _Sink) -> Node | None:
-    try:
-        return yaml.compose(text, Loader=_YamlLoader)  # type: ignore[no-any-return]
-    except yaml.MarkedYAMLError as exc:
-        mark = exc.problem_mark or exc.context_mark
-        message = (exc.problem or exc.context or "invalid YAML").removeprefix("but ")
-        line = mark.line + 1 if mark is not None else None
-        if mark is not None:
-            message += f" (column {mark.column + 1})"
-        context = exc.context_mark
-        if exc.problem and exc.context and context is not None:
-            message += f"; {exc.context} at line {context.line + 1}"
-        sink.add(file, line, "", f"YAML syntax error: {message}")
-    except yaml.YAMLError as exc:
-        sink.add(file, None, "", f"YAML syntax error: {exc}")
-    return None
+            yield entry
 
 
 # ---------------------------------------------------------------- files
-def _read_file_text(path: str, sink: _Sink, at: tuple[str, int | None, str]) -> str | None:
-    """Read a UTF-8 text file, or report why not.
-
-    ``at`` is (file, line, field) of the reference to ``path``: the book file
-    itself (field ``""``) or the ``obligors``/``links`` value naming a CSV.
-    """
-    file, line, field = at
-    own = field == ""  # the book file: its name already starts the message
-    what = "book file" if own else "CSV file"
-    named = "" if own else f" {path}"
-    try:
-        data = Path(path).read_bytes()
-    except FileNotFoundError:
-        sink.add(file, line, field, f"{what} not found" + (f":{named}" if named else ""))
-        return None
-    except IsADirectoryError:
-        sink.add(file, line, field, f"{what}{named} is a directory")
-        return None
-    except OSError as exc:
-        sink.add(file, line, field, f"cannot read {what}{named}: {exc.strerror or exc}")
-        return None
-    try:
-        return data.decode("utf-8-sig")
-    except UnicodeDecodeError as exc:
-        bad_line = data[: exc.start].count(b"\n") + 1
-        sink.add(path, bad_line, "", f"{what} is not UTF-8 text (byte 0x{data[exc.start]:02x})")
-        return None
-
-
 def _csv_entries(
-    raw: _Raw,
+    raw: Raw,
     section: str,
     book_file: str,
-    sink: _Sink,
+    sink: ProblemSink,
     allowed: tuple[str, ...],
     required: tuple[str, ...],
 ) -> tuple[list[_Entry] | None, bool]:
@@ -630,7 +435,7 @@ def _csv_entries(
     assert isinstance(raw.value, str)
     given = raw.value.strip()
     shown = given if os.path.isabs(given) else os.path.join(os.path.dirname(book_file), given)
-    text = _read_file_text(shown, sink, (book_file, raw.line, section))
+    text = read_text_file(shown, sink, (book_file, raw.line, section), kind="csv")
     if text is None:
         return None, False
     reader = csv.reader(io.StringIO(text, newline=""), strict=True)
@@ -649,18 +454,28 @@ def _csv_entries(
         return None, False
     header_line, header = rows[0]
     columns = [c.strip() for c in header]
+    if not set(columns) & set(allowed):
+        # not a table of ours: say so without quoting a line of a file that may be private
+        sink.add(
+            shown,
+            header_line,
+            section,
+            f"the first line is not a header of known columns (expected {','.join(required)}, "
+            "...); is this the right file?",
+        )
+        return None, False
     problems_before = len(sink.problems)
     seen: set[str] = set()
     for name in columns:
         if name in seen:
-            sink.add(shown, header_line, section, f"column {_quote(name)} appears twice")
+            sink.add(shown, header_line, section, f"column {quote(name)} appears twice")
         elif name not in allowed:
-            message = _unknown_field_message(name, allowed, what=f"column {_quote(name)}")
+            message = unknown_field_message(name, allowed, what=f"column {quote(name)}")
             sink.add(shown, header_line, section, message)
         seen.add(name)
     for name in required:
         if name not in seen:
-            sink.add(shown, header_line, section, f"missing required column {_quote(name)}")
+            sink.add(shown, header_line, section, f"missing required column {quote(name)}")
     if len(sink.problems) != problems_before:
         return None, False
     width = len(columns)
@@ -704,7 +519,7 @@ def _section_entries(
     key: str,
     node: Node,
     walker: _Yaml,
-    sink: _Sink,
+    sink: ProblemSink,
     allowed: tuple[str, ...],
     required: tuple[str, ...],
 ) -> tuple[list[_Entry] | None, bool]:
@@ -731,17 +546,17 @@ def _section_entries(
         walker.file,
         raw.line,
         key,
-        f"must be a list of {key} or the path of a CSV file, got {_shown(raw)}",
+        f"must be a list of {key} or the path of a CSV file, got {shown(raw)}",
     )
     return None, False
 
 
-def _factor_qubits(walker: _Yaml, node: Node, sink: _Sink) -> int:
+def _factor_qubits(walker: _Yaml, node: Node, sink: ProblemSink) -> int:
     raw = walker.raw(node)
     if raw.kind != "mapping":
         if raw.kind == "scalar" and raw.value is None:
             return DEFAULT_FACTOR_QUBITS
-        sink.add(walker.file, raw.line, "model", f"must be a mapping, got {_shown(raw)}")
+        sink.add(walker.file, raw.line, "model", f"must be a mapping, got {shown(raw)}")
         return DEFAULT_FACTOR_QUBITS
     assert isinstance(node, MappingNode)
     result = DEFAULT_FACTOR_QUBITS
@@ -751,32 +566,32 @@ def _factor_qubits(walker: _Yaml, node: Node, sink: _Sink) -> int:
                 walker.file,
                 key_node.start_mark.line + 1,
                 f"model.{key}",
-                _unknown_field_message(key, MODEL_FIELDS),
+                unknown_field_message(key, MODEL_FIELDS),
             )
             continue
         value = walker.raw(value_node)
         low, high = FACTOR_QUBITS_RANGE
-        number = _number(value)
-        if isinstance(number, str) or not float(number).is_integer() or not low <= number <= high:
+        count = number(value)
+        if isinstance(count, str) or not float(count).is_integer() or not low <= count <= high:
             sink.add(
                 walker.file,
                 value.line,
                 "model.factor_qubits",
-                f"must be an integer between {low} and {high}, got {_shown(value)}",
+                f"must be an integer between {low} and {high}, got {shown(value)}",
             )
             continue
-        result = int(number)
+        result = int(count)
     return result
 
 
-def _load(path: str, sink: _Sink) -> Book | None:
+def _load(path: str, sink: ProblemSink) -> Book | None:
     if Path(path).suffix.lower() not in _BOOK_SUFFIXES and Path(path).is_file():
         sink.add(path, None, "", "a book file must end in .yaml or .yml")
         return None
-    text = _read_file_text(path, sink, (path, None, ""))
+    text = read_text_file(path, sink, (path, None, ""))
     if text is None:
         return None
-    root = _compose(text, path, sink)
+    root = compose_yaml(text, path, sink)
     if root is None:
         if not sink.problems:
             sink.add(
@@ -794,7 +609,7 @@ def _load(path: str, sink: _Sink) -> Book | None:
             "",
             "must be a mapping with keys "
             + ", ".join(BOOK_FIELDS)
-            + f"; got {_shown(walker.raw(root))}",
+            + f"; got {shown(walker.raw(root))}",
         )
         return None
     top = walker.mapping(root, "")
@@ -803,7 +618,7 @@ def _load(path: str, sink: _Sink) -> Book | None:
     for key, (key_node, _value) in top.items():
         if key not in BOOK_FIELDS:
             sink.add(
-                path, key_node.start_mark.line + 1, key, _unknown_field_message(key, BOOK_FIELDS)
+                path, key_node.start_mark.line + 1, key, unknown_field_message(key, BOOK_FIELDS)
             )
 
     name = Path(path).stem
@@ -846,7 +661,7 @@ def _load(path: str, sink: _Sink) -> Book | None:
                     entry.file,
                     id_line,
                     f"{entry.path}.id",
-                    f"duplicate id {_quote(ident)} (first at line {known[ident]})",
+                    f"duplicate id {quote(ident)} (first at line {known[ident]})",
                 )
                 continue
             known[ident] = entry.line if entry.cells is not None else entry.fields["id"].line
@@ -901,7 +716,7 @@ def load_book(path: str | os.PathLike[str]) -> Book:
 
     """
     shown = os.fspath(path)
-    sink = _Sink()
+    sink = ProblemSink()
     try:
         book = _load(shown, sink)
     except RecursionError:

@@ -26,21 +26,33 @@ file and line, and raised together as :class:`~debtsim.errors.BookError`.
 from __future__ import annotations
 
 import math
+import os
 import re
 from collections.abc import Mapping
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Any
 
-import yaml
+from yaml.nodes import MappingNode, Node, SequenceNode
 
 from debtsim.book.records import Book, Link, Obligor
-from debtsim.errors import BookError, Problem
+from debtsim.book.yaml_reader import (
+    ProblemSink,
+    YamlReader,
+    compose_yaml,
+    line_of,
+    number,
+    quote,
+    read_text_file,
+    shown,
+    suggest,
+)
+from debtsim.errors import BookError
 
 __all__ = [
     "BASE_NAME",
     "GLOBAL_FIELDS",
     "MAX_ASSET_CORRELATION",
+    "MAX_NAME_LENGTH",
     "NEUTRAL",
     "SECTOR_FIELDS",
     "Scenario",
@@ -287,285 +299,226 @@ def folder_name(name: str) -> str:
 
 
 # ---------------------------------------------------------------------- reading
-class _Tracked(dict):  # type: ignore[type-arg]
-    """A YAML mapping remembering its own line and the line of each key."""
-
-    line: int
-    key_lines: dict[Any, int]
-    duplicates: list[tuple[int, str]]
+#: Longest scenario name: each names a folder, and file systems allow 255 bytes.
+MAX_NAME_LENGTH = 80
+_SUGGEST_LIMIT = 5000  # suggest close ids only for books up to this size
 
 
-class _TrackedList(list):  # type: ignore[type-arg]
-    """A YAML sequence remembering its own line and the line of each item."""
-
-    line: int
-    item_lines: list[int]
-
-
-class _Loader(yaml.SafeLoader):
-    """Safe loader keeping line numbers and noting duplicate keys."""
+def _range_message(name: str, value: float) -> str | None:
+    """Say which range a finite ``value`` of field ``name`` misses, without the value."""
+    message = check_field(name, value)
+    return None if message is None else message.rsplit(", got ", 1)[0]
 
 
-# YAML 1.1 wants a dot in floats ("1.0e-3"); accept "1e-3" as a number too.
-_Loader.add_implicit_resolver(
-    "tag:yaml.org,2002:float",
-    re.compile(
-        r"""^(?:[-+]?(?:[0-9][0-9_]*)\.[0-9_]*(?:[eE][-+]?[0-9]+)?
-        |[-+]?(?:[0-9][0-9_]*)(?:[eE][-+]?[0-9]+)
-        |\.[0-9_]+(?:[eE][-+][0-9]+)?
-        |[-+]?\.(?:inf|Inf|INF)
-        |\.(?:nan|NaN|NAN))$""",
-        re.X,
-    ),
-    list("-+0123456789."),
-)
-
-
-def _construct_mapping(loader: _Loader, node: yaml.MappingNode) -> _Tracked:
-    loader.flatten_mapping(node)
-    out = _Tracked()
-    out.line = node.start_mark.line + 1
-    out.key_lines = {}
-    out.duplicates = []
-    for key_node, value_node in node.value:
-        key = loader.construct_object(key_node, deep=True)
-        line = key_node.start_mark.line + 1
-        try:
-            seen = key in out
-        except TypeError:
-            key = str(key)
-            seen = key in out
-        if seen:
-            out.duplicates.append((line, str(key)))
-            continue
-        out[key] = loader.construct_object(value_node, deep=True)
-        out.key_lines[key] = line
-    return out
-
-
-def _construct_sequence(loader: _Loader, node: yaml.SequenceNode) -> _TrackedList:
-    out = _TrackedList(loader.construct_object(item, deep=True) for item in node.value)
-    out.line = node.start_mark.line + 1
-    out.item_lines = [item.start_mark.line + 1 for item in node.value]
-    return out
-
-
-_Loader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_MAPPING_TAG, _construct_mapping)
-_Loader.add_constructor(yaml.resolver.BaseResolver.DEFAULT_SEQUENCE_TAG, _construct_sequence)
-
-
-def _parse(path: Path, label: str) -> tuple[Any, list[Problem]]:
-    """Read the YAML document with line numbers; problems for I/O, syntax, duplicates."""
-    try:
-        text = path.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        return None, [Problem(label, None, "", "file not found")]
-    except (OSError, UnicodeDecodeError) as error:
-        return None, [Problem(label, None, "", f"cannot read the file: {error}")]
-    loader = _Loader(text)
-    try:
-        document = loader.get_single_data()
-    except yaml.MarkedYAMLError as error:
-        mark = error.problem_mark or error.context_mark
-        line = mark.line + 1 if mark is not None else None
-        return None, [Problem(label, line, "", f"not valid YAML: {error.problem or error}")]
-    except yaml.YAMLError as error:
-        return None, [Problem(label, None, "", f"not valid YAML: {error}")]
-    finally:
-        loader.dispose()
-    problems: list[Problem] = []
-    return document, problems
-
-
-def _line_of(container: Any, key: Any, default: int | None) -> int | None:
-    if isinstance(container, _Tracked):
-        return container.key_lines.get(key, default)
-    if isinstance(container, _TrackedList) and isinstance(key, int):
-        return container.item_lines[key]
-    return default
-
-
-def _own_line(value: Any, default: int | None) -> int | None:
-    return getattr(value, "line", default)
+def _unknown_top_key(key: str) -> str:
+    if suggest(key, ("scenarios",)) is not None:
+        return "unknown field (did you mean 'scenarios'?)"
+    return (
+        "unknown field; a scenario file is a list of scenarios, or a mapping with the one "
+        "key 'scenarios'"
+    )
 
 
 class _Reader:
-    """Turns the parsed document into scenarios, collecting every problem."""
+    """Turns the composed document into scenarios, collecting every problem."""
 
-    def __init__(self, label: str, book: Book | None) -> None:
+    def __init__(self, label: str, book: Book | None, sink: ProblemSink) -> None:
         self.label = label
         self.book = book
-        self.problems: list[Problem] = []
+        self.sink = sink
+        self.yaml = YamlReader(label, sink)
         self.sectors = sorted({o.sector for o in book.obligors if o.sector}) if book else []
         self.ids = {o.id for o in book.obligors} if book else set()
         self.names: dict[str, str] = {}
 
     def problem(self, line: int | None, where: str, message: str) -> None:
-        self.problems.append(Problem(self.label, line, where, message))
+        self.sink.add(self.label, line, where, message)
 
-    def numbers(self, mapping: _Tracked, names: tuple[str, ...], where: str) -> dict[str, float]:
+    def numbers(
+        self, items: dict[str, tuple[Node, Node]], names: tuple[str, ...], where: str
+    ) -> dict[str, float]:
         out: dict[str, float] = {}
         for name in names:
-            if name in mapping:
-                value = mapping[name]
-                message = check_field(name, value)
-                if message:
-                    self.problem(_line_of(mapping, name, mapping.line), f"{where}.{name}", message)
-                else:
-                    out[name] = float(value)
+            if name not in items:
+                continue
+            raw = self.yaml.raw(items[name][1])
+            value = number(raw)
+            here = f"{where}.{name}"
+            if isinstance(value, str):
+                self.problem(raw.line, here, value)
+                continue
+            message = _range_message(name, value)
+            if message is not None:
+                self.problem(raw.line, here, f"{message}, got {shown(raw)}")
+                continue
+            out[name] = value
         return out
 
-    def repeated_keys(self, mapping: _Tracked, where: str) -> None:
-        for line, key in mapping.duplicates:
-            self.problem(line, f"{where}.{key}", "appears twice; give each field once")
-
-    def unknown_keys(self, mapping: _Tracked, allowed: tuple[str, ...], where: str) -> None:
-        self.repeated_keys(mapping, where)
-        for key in mapping:
-            if key not in allowed:
-                self.problem(
-                    _line_of(mapping, key, mapping.line),
-                    f"{where}.{key}",
-                    f"unknown field; expected one of {', '.join(allowed)}",
-                )
-
-    def sector_block(self, value: Any, line: int | None, where: str) -> dict[str, SectorShock]:
-        if not isinstance(value, _Tracked):
-            self.problem(line, where, f"must be a mapping of sector name to changes, got {value!r}")
+    def sector_block(self, node: Node, where: str) -> dict[str, SectorShock]:
+        if not isinstance(node, MappingNode):
+            got = shown(self.yaml.raw(node))
+            self.problem(
+                line_of(node), where, f"must be a mapping of sector name to changes, got {got}"
+            )
             return {}
-        self.repeated_keys(value, where)
+        items = self.yaml.mapping(node, where)
         out: dict[str, SectorShock] = {}
-        for sector, changes in value.items():
-            key_line = _line_of(value, sector, line)
+        for sector, (key_node, changes) in (items or {}).items():
+            key_line = line_of(key_node)
             here = f"{where}.{sector}"
-            if not isinstance(sector, str) or not sector.strip():
-                self.problem(
-                    key_line, where, f"sector names must be non-empty text, got {sector!r}"
-                )
+            if not sector.strip():
+                self.problem(key_line, where, "sector names must be non-empty text")
                 continue
             if self.book is not None and sector not in self.sectors:
-                known = (
-                    ", ".join(self.sectors) if self.sectors else "none (no obligor has a sector)"
-                )
-                self.problem(
-                    key_line, here, f"no obligor of the book has this sector; sectors: {known}"
-                )
-            if not isinstance(changes, _Tracked) or not changes:
+                guess = suggest(sector, self.sectors)
+                if guess is not None:
+                    message = f"no obligor of the book has this sector (did you mean {guess!r}?)"
+                else:
+                    known = ", ".join(self.sectors) or "none (no obligor has a sector)"
+                    message = f"no obligor of the book has this sector; sectors: {known}"
+                self.problem(key_line, here, message)
+            fields = self.yaml.mapping(changes, here) if isinstance(changes, MappingNode) else None
+            if not fields:
+                if fields is None and isinstance(changes, MappingNode):
+                    continue  # a broken merge, already reported
+                got = shown(self.yaml.raw(changes))
                 self.problem(
                     key_line,
                     here,
-                    f"must be a mapping with any of {', '.join(SECTOR_FIELDS)}, got {changes!r}",
+                    f"must be a mapping with any of {', '.join(SECTOR_FIELDS)}, got {got}",
                 )
                 continue
-            self.unknown_keys(changes, SECTOR_FIELDS, here)
-            values = self.numbers(changes, SECTOR_FIELDS, here)
-            out[sector] = SectorShock(**values)
+            self.yaml.check_keys(fields, SECTOR_FIELDS, here)
+            out[sector] = SectorShock(**self.numbers(fields, SECTOR_FIELDS, here))
         return out
 
-    def defaulted(self, value: Any, line: int | None, where: str) -> tuple[str, ...]:
-        if not isinstance(value, _TrackedList):
-            self.problem(line, where, f"must be a list of obligor ids, got {value!r}")
+    def defaulted(self, node: Node, where: str) -> tuple[str, ...]:
+        if not isinstance(node, SequenceNode):
+            got = shown(self.yaml.raw(node))
+            self.problem(line_of(node), where, f"must be a list of obligor ids, got {got}")
             return ()
         out: list[str] = []
-        for i, item in enumerate(value):
-            item_line = _line_of(value, i, line)
-            if isinstance(item, bool) or not isinstance(item, str | int):
-                self.problem(item_line, f"{where}[{i}]", f"must be an obligor id, got {item!r}")
+        for i, item in enumerate(node.value):
+            raw = self.yaml.raw(item)
+            here = f"{where}[{i}]"
+            value = raw.value
+            if (
+                raw.kind != "scalar"
+                or isinstance(value, bool | float)
+                or not isinstance(value, str | int)
+                or not str(value).strip()
+            ):
+                self.problem(raw.line, here, f"must be an obligor id, got {shown(raw)}")
                 continue
-            oid = str(item)
+            oid = value if isinstance(value, str) else raw.text
             if oid in out:
-                self.problem(item_line, f"{where}[{i}]", f"{oid!r} is listed twice")
+                self.problem(raw.line, here, f"{oid!r} is listed twice")
             elif self.book is not None and oid not in self.ids:
-                self.problem(item_line, f"{where}[{i}]", f"no obligor with id {oid!r} in the book")
+                message = f"no obligor with id {quote(oid)} in the book"
+                guess = suggest(oid, self.ids) if len(self.ids) <= _SUGGEST_LIMIT else None
+                if guess is not None:
+                    message += f" (did you mean {quote(guess)}?)"
+                self.problem(raw.line, here, message)
             out.append(oid)
         return tuple(dict.fromkeys(out))
 
-    def scenario(self, item: Any, line: int | None, where: str) -> Scenario | None:
-        if not isinstance(item, _Tracked):
-            self.problem(line, where, f"must be a mapping with a name, got {item!r}")
+    def name(self, items: dict[str, tuple[Node, Node]], line: int, where: str) -> str | None:
+        here = f"{where}.name"
+        if "name" not in items:
+            self.problem(line, here, "missing; every scenario needs a name")
             return None
-        before = len(self.problems)
-        self.unknown_keys(item, _SCENARIO_KEYS, where)
-        name = item.get("name")
-        if "name" not in item:
-            self.problem(item.line, f"{where}.name", "missing; every scenario needs a name")
-        elif (
-            not isinstance(name, str | int | float)
-            or isinstance(name, bool)
-            or not str(name).strip()
-        ):
+        raw = self.yaml.raw(items["name"][1])
+        value = raw.value
+        if raw.kind != "scalar" or value is None or isinstance(value, bool):
+            self.problem(raw.line, here, f"must be non-empty text, got {shown(raw)}")
+            return None
+        text = (value if isinstance(value, str) else raw.text).strip()
+        if not text:
+            self.problem(raw.line, here, f"must be non-empty text, got {shown(raw)}")
+            return None
+        if not text.isprintable():
+            self.problem(raw.line, here, f"must not hold control characters, got {quote(text)}")
+            return None
+        if len(text) > MAX_NAME_LENGTH:
             self.problem(
-                _line_of(item, "name", item.line),
-                f"{where}.name",
-                f"must be non-empty text, got {name!r}",
+                raw.line,
+                here,
+                f"must be at most {MAX_NAME_LENGTH} characters (it names a folder), "
+                f"got {len(text)}",
             )
-        elif folder_name(str(name)) == BASE_NAME:
+            return None
+        key = folder_name(text)
+        if key == BASE_NAME:
+            self.problem(raw.line, here, f"{BASE_NAME!r} is reserved for the unstressed book")
+            return None
+        if key in self.names:
             self.problem(
-                _line_of(item, "name", item.line),
-                f"{where}.name",
-                f"{BASE_NAME!r} is reserved for the unstressed book",
+                raw.line,
+                here,
+                f"{text!r} clashes with {self.names[key]} (names must differ after "
+                "lower-casing and replacing characters other than a-z, 0-9, . _ - by a dash, "
+                "since each names a folder)",
             )
-        else:
-            key = folder_name(str(name))
-            if key in self.names:
-                self.problem(
-                    _line_of(item, "name", item.line),
-                    f"{where}.name",
-                    f"{str(name).strip()!r} clashes with {self.names[key]} (names must "
-                    "differ after lower-casing and replacing characters other than a-z, 0-9, "
-                    ". _ - by a dash, since each names a folder)",
-                )
-            else:
-                self.names[key] = where
-        values = self.numbers(item, GLOBAL_FIELDS, where)
+            return None
+        self.names[key] = where
+        return text
+
+    def scenario(self, node: Node, where: str) -> Scenario | None:
+        if not isinstance(node, MappingNode):
+            got = shown(self.yaml.raw(node))
+            self.problem(line_of(node), where, f"must be a mapping with a name, got {got}")
+            return None
+        before = len(self.sink.problems)
+        items = self.yaml.mapping(node, where)
+        if items is None:
+            return None
+        self.yaml.check_keys(items, _SCENARIO_KEYS, where)
+        name = self.name(items, line_of(node), where)
+        values = self.numbers(items, GLOBAL_FIELDS, where)
         sectors: dict[str, SectorShock] = {}
-        if "sectors" in item:
-            sectors = self.sector_block(
-                item["sectors"], _line_of(item, "sectors", item.line), f"{where}.sectors"
-            )
+        if "sectors" in items:
+            sectors = self.sector_block(items["sectors"][1], f"{where}.sectors")
         dead: tuple[str, ...] = ()
-        if "defaulted" in item:
-            dead = self.defaulted(
-                item["defaulted"], _line_of(item, "defaulted", item.line), f"{where}.defaulted"
-            )
-        if len(self.problems) > before:
+        if "defaulted" in items:
+            dead = self.defaulted(items["defaulted"][1], f"{where}.defaulted")
+        if len(self.sink.problems) > before or name is None:
             return None
         return Scenario(
-            name=str(name).strip(),
+            name=name,
             sectors=tuple(sectors.items()),
             defaulted=dead,
-            line=item.line,
+            line=line_of(node),
             **values,
         )
 
-    def document(self, doc: Any) -> list[Scenario]:
-        items: Any = doc
+    def document(self, root: Node | None) -> list[Scenario]:
         where = "scenarios"
-        if isinstance(doc, _Tracked):
-            self.repeated_keys(doc, "file")
-            extra = [k for k in doc if k != "scenarios"]
-            for key in extra:
-                self.problem(
-                    _line_of(doc, key, doc.line),
-                    str(key),
-                    "unknown field; a scenario file is a list of scenarios, or a mapping "
-                    "with the one key 'scenarios'",
-                )
-            if "scenarios" not in doc:
-                self.problem(doc.line, "scenarios", "missing; expected a list of scenarios")
-                return []
-            items = doc["scenarios"]
-        if not isinstance(items, _TrackedList):
-            line = _own_line(items, None)
-            found = "an empty file" if items is None else repr(items)
-            self.problem(line, where, f"must be a list of scenarios, got {found}")
+        if root is None:
+            self.problem(None, where, "must be a list of scenarios, got an empty file")
             return []
-        if not items:
-            self.problem(items.line, where, "is empty; give at least one scenario")
+        items: Node = root
+        if isinstance(root, MappingNode):
+            top = self.yaml.mapping(root, "")
+            if top is None:
+                return []
+            for key, (key_node, _value) in top.items():
+                if key != "scenarios":
+                    self.problem(line_of(key_node), key, _unknown_top_key(key))
+            if "scenarios" not in top:
+                self.problem(line_of(root), where, "missing; expected a list of scenarios")
+                return []
+            items = top["scenarios"][1]
+        if not isinstance(items, SequenceNode):
+            raw = self.yaml.raw(items)
+            got = "nothing" if raw.kind == "scalar" and raw.value is None else shown(raw)
+            self.problem(raw.line, where, f"must be a list of scenarios, got {got}")
+            return []
+        if not items.value:
+            self.problem(line_of(items), where, "is empty; give at least one scenario")
             return []
         scenarios: list[Scenario] = []
-        for i, item in enumerate(items):
-            scenario = self.scenario(item, _line_of(items, i, items.line), f"{where}[{i}]")
+        for i, item in enumerate(items.value):
+            scenario = self.scenario(item, f"{where}[{i}]")
             if scenario is not None:
                 scenarios.append(scenario)
         return scenarios
@@ -573,6 +526,9 @@ class _Reader:
 
 def load_scenarios(path: Path | str, book: Book | None = None) -> list[Scenario]:
     """Read and validate a scenario file.
+
+    The file is read by the same line-tracking reader as books
+    (:mod:`debtsim.book.yaml_reader`), with the same guards and messages.
 
     Parameters
     ----------
@@ -593,14 +549,16 @@ def load_scenarios(path: Path | str, book: Book | None = None) -> list[Scenario]
         With every problem found, each as ``file:line: field: message``.
 
     """
-    label = str(path)
-    document, problems = _parse(Path(path), label)
-    if document is None and problems:
-        raise BookError(problems)
-    reader = _Reader(label, book)
-    scenarios = reader.document(document)
-    problems.extend(reader.problems)
-    if problems:
-        problems.sort(key=lambda p: (p.line is None, p.line or 0))
-        raise BookError(problems)
+    label = os.fspath(path)
+    sink = ProblemSink()
+    text = read_text_file(label, sink, (label, None, ""), what="scenario file")
+    if text is None:
+        raise BookError(sink.sorted())
+    try:
+        root = compose_yaml(text, label, sink)
+        scenarios = [] if sink.problems else _Reader(label, book, sink).document(root)
+    except RecursionError:
+        sink.add(label, None, "", "cannot read the file: it is nested too deeply")
+    if sink.problems:
+        raise BookError(sink.sorted())
     return scenarios

@@ -34,6 +34,7 @@ from debtsim.report.formatting import (
 from debtsim.report.page import esc, figure, render_page
 from debtsim.report.run_view import RunView
 from debtsim.report.text import PD_WITH_CONTAGION, WITHOUT_LINKS, WITHOUT_LINKS_HEADING
+from debtsim.risk import level_key
 
 __all__ = [
     "BOOK_ROWS",
@@ -114,14 +115,21 @@ _SE_ALIASES = {
 }
 
 
-def _standard_error(diag: Mapping[str, Any], measure: str, key: str | None) -> float | None:
-    """Look up a standard error an engine reported, if any (``<measure>_standard_error``)."""
+def _standard_error(
+    diag: Mapping[str, Any], measure: str, key: float | str | None
+) -> float | None:
+    """Look up a standard error an engine reported, if any (``<measure>_standard_error``).
+
+    Per-level errors may be keyed by the level as a float or as ``str(float)``.
+    """
     for name in _SE_ALIASES[measure]:
         value = diag.get(f"{name}_standard_error")
         if value is None:
             continue
         if isinstance(value, Mapping):
-            value = value.get(key) if key is not None else None
+            if key is None:
+                return None
+            value = value.get(key, value.get(level_key(float(key))))
         try:
             f = float(value)  # type: ignore[arg-type]
         except (TypeError, ValueError):
@@ -221,8 +229,10 @@ def _kpis(analysis: RunView) -> str:
     cur = analysis.book.currency
     effect = contagion_effect(m, cm)
     top = max(m.var, key=float) if m.var else None
+    el_diff = effect["expected_loss_from_contagion"]
     cards: list[tuple[str, float, float | None, float | None]] = [
-        ("Expected loss", m.expected_loss, effect["expected_loss_from_contagion"],
+        ("Expected loss", m.expected_loss,
+         float(el_diff) if isinstance(el_diff, (int, float)) else None,
          cm.expected_loss if cm else None),
     ]
     if top is not None:
@@ -234,7 +244,8 @@ def _kpis(analysis: RunView) -> str:
              cm.economic_capital if cm else None),
         ):
             diffs = effect[f"{name}_from_contagion"]
-            diff = diffs.get(top) if isinstance(diffs, Mapping) else None
+            found = diffs.get(top) if isinstance(diffs, Mapping) else None
+            diff = float(found) if isinstance(found, (int, float)) else None
             cards.append((label, values[top], diff, plain.get(top) if plain else None))
     html = []
     for label, value, diff, plain_value in cards:
@@ -256,7 +267,7 @@ def _measures_table(analysis: RunView) -> str:
     cdiag = analysis.copula_distribution.diagnostics if analysis.copula_distribution else {}
     cur = analysis.book.currency
 
-    rows: list[tuple[str, str, str | None, float, float | None]] = [
+    rows: list[tuple[str, str, float | None, float, float | None]] = [
         ("Expected loss (EL)", "expected_loss", None, m.expected_loss,
          cm.expected_loss if cm else None),
         ("Loss standard deviation", "loss_std", None, m.loss_std, cm.loss_std if cm else None),
@@ -276,7 +287,7 @@ def _measures_table(analysis: RunView) -> str:
         head += (f'<th class="n">{esc(WITHOUT_LINKS_HEADING)}</th>'
                  '<th class="n">From contagion</th><th class="n">Relative change (%)</th>')
 
-    def row(label: str, measure: str, key: str | None, v: float, c: float | None) -> str:
+    def row(label: str, measure: str, key: float | None, v: float, c: float | None) -> str:
         se = _standard_error(diag, measure, key)
         cells = f'<td>{esc(label)}</td><td class="n m">{_with_se(v, se)}</td>'
         if cm is not None:

@@ -330,9 +330,9 @@ def sweep_charts(
     top = level_key(max(levels)) if levels else None
     charts: dict[str, bytes] = {}
     if len(axes) == 1:
-        a = axes[0].name
-        charts[f"measures_vs_{a}"] = _line_chart(
-            table, a, measures, currency, f"Risk measures against {a}"
+        only = axes[0].name
+        charts[f"measures_vs_{only}"] = _line_chart(
+            table, only, measures, currency, f"Risk measures against {only}"
         )
     elif len(axes) == 2:
         x, y = axes[0], axes[1]
@@ -342,14 +342,14 @@ def sweep_charts(
             )
     else:
         held = {a.name: _nearest_neutral(a, NEUTRAL) for a in axes}
-        for a in axes:
+        for axis in axes:
             mask = np.ones(len(table), dtype=bool)
             for other in axes:
-                if other.name != a.name:
+                if other.name != axis.name:
                     mask &= np.isclose(table[other.name].to_numpy(dtype=float), held[other.name])
-            others = ", ".join(f"{k} {v:g}" for k, v in held.items() if k != a.name)
-            charts[f"measures_vs_{a.name}"] = _line_chart(
-                table[mask], a.name, measures, currency,
-                f"Risk measures against {a.name} ({others})",
+            others = ", ".join(f"{k} {v:g}" for k, v in held.items() if k != axis.name)
+            charts[f"measures_vs_{axis.name}"] = _line_chart(
+                table[mask], axis.name, measures, currency,
+                f"Risk measures against {axis.name} ({others})",
             )
     return charts

@@ -18,6 +18,7 @@ from typing import TYPE_CHECKING, Annotated
 import typer
 
 from debtsim import BookError, DebtsimError, OptionError
+from debtsim.report.text import CAUTION
 
 if TYPE_CHECKING:
     from debtsim import RunResult
@@ -28,7 +29,7 @@ app = typer.Typer(
     name="debtsim",
     help=(
         "Credit-portfolio loss with default contagion between obligors that lend to each "
-        "other. Results are model estimates, not investment or regulatory advice."
+        "other. " + CAUTION
     ),
     add_completion=False,
     no_args_is_help=True,
@@ -189,7 +190,7 @@ def _print_run(result: RunResult, folder: Path) -> None:
         for a in c.levels:
             lines.append(f"    VaR {a!s:<7}        {c.var[a]:,.2f} {cur}")
     lines.append(f"report: {folder / 'report.html'}")
-    lines.append("Model estimates only: not investment or regulatory advice.")
+    lines.append(CAUTION)
     typer.echo("\n".join(lines))
 
 
@@ -298,7 +299,7 @@ def stress(
                      f"{row[top]:>16,.2f}")
     lines.append(f"amounts in {cur}" if cur else "")
     lines.append(f"report: {final / 'report.html'}   table: {final / 'scenarios.csv'}")
-    lines.append("Model estimates only: not investment or regulatory advice.")
+    lines.append(CAUTION)
     typer.echo("\n".join(line for line in lines if line))
 
 
@@ -384,7 +385,7 @@ def sweep(
         first = table.loc[table["status"] != "ok", "error"].iloc[0]
         lines.append(f"  first failure: {first}")
     lines.append(f"table: {final / 'sweep.csv'}   report: {final / 'report.html'}")
-    lines.append("Model estimates only: not investment or regulatory advice.")
+    lines.append(CAUTION)
     typer.echo("\n".join(lines))
 
 

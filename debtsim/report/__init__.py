@@ -22,7 +22,8 @@ from debtsim.output_files import (
     write_loss_distribution,
 )
 from debtsim.report.run_view import RunView
-from debtsim.report.summary import CAUTION, summary_dict
+from debtsim.report.summary import summary_dict
+from debtsim.report.text import CAUTION
 
 __all__ = [
     "CAUTION",

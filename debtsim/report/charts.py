@@ -1,8 +1,14 @@
-"""Charts of a run as PNG images, base64-encoded for embedding in the page.
+"""Charts of a run, and the chart helpers every report chart uses.
 
 Matplotlib is used through its object API on the Agg canvas (no pyplot, no
 global backend state, nothing to close).  Charts only draw what the run
 computed; binning of large supports is for display only.
+
+Layout rules that keep labels readable: marker lines (EL, VaR) stop below a
+band at the top of the plot, and the notes that belong in that band (the
+height of a cut bar) sit there, so no line crosses a note; a note about
+what is not drawn goes under the axis; legends with more than two entries
+sit outside the plot, where they cannot hide a line.
 """
 
 from __future__ import annotations
@@ -20,43 +26,61 @@ from matplotlib.ticker import FuncFormatter, PercentFormatter
 from numpy.typing import NDArray
 
 from debtsim.distribution import LossDistribution
+from debtsim.report.formatting import level_label, short_amount
+from debtsim.report.text import WITH_LINKS, WITHOUT_LINKS, WITHOUT_LINKS_SHORT
 from debtsim.risk import RiskMeasures
 
 __all__ = [
+    "BASE_COLOUR",
+    "BINS",
+    "MARKER_TOP",
     "MAX_ATOMS_DRAWN",
+    "PALETTE",
+    "amount_axis",
     "comparison_chart",
-    "loss_law_chart",
+    "exceedance",
+    "legend_outside",
+    "loss_distribution_chart",
     "new_figure",
     "plain_text",
     "png_base64",
-    "short_amount",
+    "png_bytes",
     "tail_chart",
     "uplift_chart",
 ]
 
 #: Supports larger than this are drawn binned rather than atom by atom.
 MAX_ATOMS_DRAWN = 120
-#: Number of bins of a binned loss law.
+#: Number of bins of a binned loss distribution.
 BINS = 80
+#: Marker lines end at this fraction of the plot height; notes sit in the band above.
+MARKER_TOP = 0.84
+#: Height (fraction of the plot) of the tallest bar that is not cut.
+TALLEST_BAR = 0.78
 
 MODEL_COLOUR = "#1f4e79"
-COPULA_COLOUR = "#8c96a3"
+PLAIN_COLOUR = "#8c96a3"
 CONTAGION_COLOUR = "#d9822b"
 MARK_COLOUR = "#b03a2e"
+NOTE_COLOUR = "#444444"
+BASE_COLOUR = "#222222"
+#: Colours of series after the base (scenarios, measures).
+PALETTE = (
+    "#1f4e79",
+    "#d9822b",
+    "#3b8b5a",
+    "#b03a2e",
+    "#7b5ea7",
+    "#8c6d31",
+    "#2a9d8f",
+    "#c2185b",
+    "#5d6d7e",
+    "#e9c46a",
+)
 DPI = 110
 
 
-def short_amount(x: float) -> str:
-    """Compact amount for axes and labels: ``1.2M``, ``350k``, ``0.45``."""
-    ax = abs(x)
-    for bound, suffix in ((1e12, "T"), (1e9, "bn"), (1e6, "M"), (1e3, "k")):
-        if ax >= bound:
-            return f"{x / bound:.3g}{suffix}"
-    if ax == 0:
-        return "0"
-    return f"{x:.3g}"
-
-
+# ------------------------------------------------------------------- helpers
 def plain_text(text: object) -> str:
     """Keep user text literal in matplotlib (``$`` would start mathtext)."""
     return str(text).replace("$", r"\$")
@@ -73,111 +97,50 @@ def new_figure(width: float = 9.0, height: float = 4.0) -> tuple[Figure, Axes]:
     return fig, ax
 
 
-def png_base64(fig: Figure) -> str:
-    """Render ``fig`` to PNG and return it base64-encoded (ASCII)."""
+def png_bytes(fig: Figure) -> bytes:
+    """Render ``fig`` to PNG."""
     buf = io.BytesIO()
     with warnings.catch_warnings():
         # a name in a script the bundled font lacks is drawn as boxes; say nothing on stderr
         warnings.filterwarnings("ignore", message="Glyph .* missing from font")
         fig.savefig(buf, format="png", dpi=DPI, bbox_inches="tight")
-    return base64.b64encode(buf.getvalue()).decode("ascii")
+    return buf.getvalue()
 
 
-def _amount_axis(ax: Axes, axis: str = "x") -> None:
+def png_base64(fig: Figure) -> str:
+    """Render ``fig`` to PNG and return it base64-encoded (ASCII)."""
+    return base64.b64encode(png_bytes(fig)).decode("ascii")
+
+
+def amount_axis(ax: Axes, axis: str = "x") -> None:
+    """Label an axis of amounts compactly (``1.2M``, ``350k``)."""
     fmt = FuncFormatter(lambda v, _pos: short_amount(v))
     (ax.xaxis if axis == "x" else ax.yaxis).set_major_formatter(fmt)
 
 
-def _pct(level: float) -> str:
-    return f"{100 * level:g}%"
+def legend_outside(ax: Axes) -> None:
+    """Place the legend to the right of the plot, where it hides nothing."""
+    ax.legend(frameon=False, fontsize=8, loc="upper left", bbox_to_anchor=(1.01, 1.0))
 
 
-def loss_law_chart(
-    dist: LossDistribution,
-    measures: RiskMeasures,
-    copula: LossDistribution | None,
-    currency: str,
-) -> str:
-    """Probability of each loss (binned for large supports), model and copula.
-
-    Parameters
-    ----------
-    dist : LossDistribution
-        The law with contagion.
-    measures : RiskMeasures
-        Its measures; EL and VaR are marked.
-    copula : LossDistribution or None
-        The law without links, drawn for comparison when given.
-    currency : str
-        Axis label.
-
-    Returns
-    -------
-    str
-        Base64 PNG.
-
-    """
-    fig, ax = new_figure()
-    large = dist.losses.size > MAX_ATOMS_DRAWN or (
-        copula is not None and copula.losses.size > MAX_ATOMS_DRAWN
-    )
-    laws = [dist] if copula is None else [dist, copula]
-    top = _display_top(laws, measures)
-    if large and top > 0:
-        edges = np.linspace(min(0.0, float(dist.losses[0])), top, BINS + 1)
-        mass, _ = np.histogram(dist.losses, bins=edges, weights=dist.probabilities)
-        beyond = [float(law.probabilities[law.losses > top].sum()) for law in laws]
-        if max(beyond) > 0:
-            names = ("with contagion", "copula")
-            ax.annotate(f"not drawn: P(loss > {short_amount(top)}) = "
-                        + ", ".join(f"{b:.1e} {n}" if len(laws) > 1 else f"{b:.1e}"
-                                    for b, n in zip(beyond, names, strict=False)),
-                        (0.99, 0.88), xycoords="axes fraction", ha="right", fontsize=8,
-                        color="#555555")
-        ax.bar(edges[:-1], mass, width=np.diff(edges), align="edge", color=MODEL_COLOUR,
-               alpha=0.85, label="with contagion")
-        if copula is not None:
-            cmass, _ = np.histogram(copula.losses, bins=edges, weights=copula.probabilities)
-            ax.stairs(cmass, edges, color=COPULA_COLOUR, linewidth=1.6,
-                      label="copula (no links)")
-        ax.set_ylabel("probability per bin")
-        bin_note = f", bins of {short_amount(float(edges[1] - edges[0]))}"
-        centres = edges[:-1] + np.diff(edges) / 2
-        drawn = [(centres, mass)] + ([(centres, cmass)] if copula is not None else [])
-    else:
-        if copula is not None:
-            ax.plot(copula.losses, copula.probabilities, "o", mfc="none", mec=COPULA_COLOUR,
-                    ms=7, label="copula (no links)")
-        ax.vlines(dist.losses, 0, dist.probabilities, color=MODEL_COLOUR, linewidth=2)
-        ax.plot(dist.losses, dist.probabilities, "o", color=MODEL_COLOUR, ms=4,
-                label="with contagion")
-        ax.set_ylabel("probability")
-        bin_note = ""
-        drawn = [(dist.losses, dist.probabilities)]
-        if copula is not None:
-            drawn.append((copula.losses, copula.probabilities))
-    _clip_spike(ax, drawn)
-    ax.axvline(measures.expected_loss, color=MODEL_COLOUR, linestyle=":", linewidth=1.2)
-    ax.annotate("EL", (measures.expected_loss, 0.8), xycoords=("data", "axes fraction"),
-                xytext=(3, 0), textcoords="offset points", color=MODEL_COLOUR, fontsize=9,
-                rotation=90, va="center")
-    same_var: dict[float, list[str]] = {}
-    for key, var in measures.var.items():
-        same_var.setdefault(var, []).append(_pct(float(key)))
-    for var, levels in same_var.items():
-        ax.axvline(var, color=MARK_COLOUR, linestyle="--", linewidth=1)
-        ax.annotate(f"VaR {', '.join(levels)}", (var, 0.5), xycoords=("data", "axes fraction"),
-                    xytext=(3, 0), textcoords="offset points", color=MARK_COLOUR, fontsize=9,
-                    rotation=90, va="center")
-    unit = f" ({plain_text(currency)})" if currency else ""
-    ax.set_xlabel(f"portfolio loss{unit}{bin_note}")
-    _amount_axis(ax)
-    ax.legend(frameon=False, loc="lower right", bbox_to_anchor=(1.0, 1.0), ncol=2, fontsize=9)
-    ax.set_title("Loss distribution", loc="left", fontsize=11)
-    return png_base64(fig)
+def exceedance(dist: LossDistribution) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Step points of ``P(L > l)``: value ``y[j]`` holds on ``[x[j], x[j+1])``."""
+    p = dist.probabilities
+    above = np.concatenate((np.cumsum(p[::-1])[::-1][1:], [0.0]))  # P(L > losses[j])
+    x = np.concatenate(([min(0.0, float(dist.losses[0]))], dist.losses))
+    y = np.concatenate(([1.0], above))
+    return x, y
 
 
-#: Tail probability beyond which a binned loss law is not drawn (the tail chart shows it).
+def _marker(ax: Axes, x: float, text: str, colour: str, style: str) -> None:
+    """Draw a vertical marker line up to :data:`MARKER_TOP`, labelled beside its top."""
+    ax.axvline(x, ymax=MARKER_TOP, color=colour, linestyle=style, linewidth=1.1)
+    ax.annotate(text, (x, MARKER_TOP), xycoords=("data", "axes fraction"), xytext=(3, 0),
+                textcoords="offset points", color=colour, fontsize=9, rotation=90, va="top")
+
+
+# ------------------------------------------------------------- loss histogram
+#: Tail probability beyond which a binned loss distribution is not drawn (the tail chart is).
 FAR_TAIL = 1e-5
 
 
@@ -192,28 +155,28 @@ def _display_top(laws: Sequence[LossDistribution], measures: RiskMeasures) -> fl
     return min(top, max(float(law.losses[-1]) for law in laws))
 
 
-def _clip_spike(
+def _fit_heights(
     ax: Axes, laws: Sequence[tuple[NDArray[np.float64], NDArray[np.float64]]]
 ) -> None:
-    """Cut the y-axis above a dominant spike (usually no loss) and label its height.
+    """Set the y-axis so bars stay under the note band; cut a dominant spike and label it.
 
-    Each law is ``(x, p)``; the axis is cut when a law's largest mass is more
-    than four times the second largest mass of every law drawn.
+    Each law is ``(x, p)``.  The axis is cut when a law's largest mass is
+    more than four times the second largest mass of every law drawn; the cut
+    bar's height is written in the band above the marker lines.
     """
-    ax.set_ylim(bottom=0)
-    firsts, seconds = [], []
-    for _x, p in laws:
-        if p.size < 2:
-            return
-        top2 = np.sort(np.asarray(p, dtype=float))[-2:]
-        seconds.append(float(top2[0]))
-        firsts.append(float(top2[1]))
-    if not laws or max(seconds) <= 0 or max(firsts) <= 4 * max(seconds):
+    heights = [np.asarray(p, dtype=float) for _x, p in laws if np.asarray(p).size]
+    if not heights:
         return
-    top = 1.35 * max(seconds)
+    tallest = max(float(h.max()) for h in heights)
+    seconds = [float(np.sort(h)[-2]) if h.size > 1 else 0.0 for h in heights]
+    cut = max(seconds) > 0 and tallest > 4 * max(seconds)
+    if not cut:
+        ax.set_ylim(0, tallest / TALLEST_BAR if tallest > 0 else 1.0)
+        return
+    top = max(seconds) / TALLEST_BAR
     ax.set_ylim(0, top)
     spikes: dict[float, list[tuple[str, str]]] = {}
-    for name, (x, p) in zip(("with contagion", "copula"), laws, strict=False):
+    for name, (x, p) in zip((WITH_LINKS, WITHOUT_LINKS_SHORT), laws, strict=False):
         for xv, pv in zip(x[p > top].tolist(), p[p > top].tolist(), strict=True):
             spikes.setdefault(xv, []).append((name, f"{pv:.1%}"))
     for xv, found in spikes.items():
@@ -221,27 +184,97 @@ def _clip_spike(
         if len(values) == 1 and len(found) == len(laws):
             text = found[0][1]
         else:
-            text = ", ".join(f"{n} {v}" for n, v in found)
-        ax.annotate(f"P = {text}, axis cut", (xv, top), xytext=(5, -10),
-                    textcoords="offset points", fontsize=9, color="#333333")
+            text = ", ".join(f"{v} {n}" for n, v in found)
+        ax.annotate(f"bar cut: P = {text}", (xv, (1 + MARKER_TOP) / 2),
+                    xycoords=("data", "axes fraction"), xytext=(6, 0),
+                    textcoords="offset points", fontsize=8.5, color=NOTE_COLOUR, va="center")
 
 
-def _exceedance(dist: LossDistribution) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
-    """Step points of ``P(L > l)``: value ``y[j]`` holds on ``[x[j], x[j+1])``."""
-    p = dist.probabilities
-    above = np.concatenate((np.cumsum(p[::-1])[::-1][1:], [0.0]))  # P(L > losses[j])
-    x = np.concatenate(([min(0.0, float(dist.losses[0]))], dist.losses))
-    y = np.concatenate(([1.0], above))
-    return x, y
+def loss_distribution_chart(
+    dist: LossDistribution,
+    measures: RiskMeasures,
+    plain: LossDistribution | None,
+    currency: str,
+) -> str:
+    """Probability of each loss (binned for large supports), with and without links.
+
+    Parameters
+    ----------
+    dist : LossDistribution
+        The loss distribution with links (contagion).
+    measures : RiskMeasures
+        Its measures; EL and VaR are marked.
+    plain : LossDistribution or None
+        The distribution without links (Gaussian copula), drawn for comparison.
+    currency : str
+        Axis label.
+
+    Returns
+    -------
+    str
+        Base64 PNG.
+
+    """
+    fig, ax = new_figure()
+    large = dist.losses.size > MAX_ATOMS_DRAWN or (
+        plain is not None and plain.losses.size > MAX_ATOMS_DRAWN
+    )
+    laws = [dist] if plain is None else [dist, plain]
+    unit = f" ({plain_text(currency)})" if currency else ""
+    xlabel = f"portfolio loss{unit}"
+    top = _display_top(laws, measures)
+    if large and top > 0:
+        edges = np.linspace(min(0.0, float(dist.losses[0])), top, BINS + 1)
+        mass, _ = np.histogram(dist.losses, bins=edges, weights=dist.probabilities)
+        ax.bar(edges[:-1], mass, width=np.diff(edges), align="edge", color=MODEL_COLOUR,
+               alpha=0.85, label=WITH_LINKS)
+        centres = edges[:-1] + np.diff(edges) / 2
+        drawn = [(centres, mass)]
+        if plain is not None:
+            pmass, _ = np.histogram(plain.losses, bins=edges, weights=plain.probabilities)
+            ax.stairs(pmass, edges, color=PLAIN_COLOUR, linewidth=1.6, label=WITHOUT_LINKS)
+            drawn.append((centres, pmass))
+        ax.set_ylabel("probability per bin")
+        xlabel += f", bins of {short_amount(float(edges[1] - edges[0]))}"
+        beyond = [float(law.probabilities[law.losses > top].sum()) for law in laws]
+        if max(beyond) > 0:
+            names = (WITH_LINKS, WITHOUT_LINKS_SHORT)
+            xlabel += f"\nnot drawn: P(loss > {short_amount(top)}) = " + ", ".join(
+                f"{b:.1e} {n}" if len(laws) > 1 else f"{b:.1e}"
+                for b, n in zip(beyond, names, strict=False)
+            )
+    else:
+        if plain is not None:
+            ax.plot(plain.losses, plain.probabilities, "o", mfc="none", mec=PLAIN_COLOUR,
+                    ms=7, label=WITHOUT_LINKS)
+        ax.vlines(dist.losses, 0, dist.probabilities, color=MODEL_COLOUR, linewidth=2)
+        ax.plot(dist.losses, dist.probabilities, "o", color=MODEL_COLOUR, ms=4, label=WITH_LINKS)
+        ax.set_ylabel("probability")
+        drawn = [(dist.losses, dist.probabilities)]
+        if plain is not None:
+            drawn.append((plain.losses, plain.probabilities))
+    _fit_heights(ax, drawn)
+    _marker(ax, measures.expected_loss, "EL", MODEL_COLOUR, ":")
+    same_var: dict[float, list[str]] = {}
+    for key, var in measures.var.items():
+        same_var.setdefault(var, []).append(level_label(key))
+    for var, levels in same_var.items():
+        _marker(ax, var, f"VaR {', '.join(levels)}", MARK_COLOUR, "--")
+    ax.set_xlabel(xlabel)
+    amount_axis(ax)
+    ax.legend(frameon=False, loc="lower right", bbox_to_anchor=(1.0, 1.0), ncol=2, fontsize=9)
+    ax.set_title("Loss distribution", loc="left", fontsize=11)
+    return png_base64(fig)
 
 
+# ------------------------------------------------------------------ tail chart
 def tail_chart(
     dist: LossDistribution,
     measures: RiskMeasures,
-    copula: LossDistribution | None,
+    plain: LossDistribution | None,
     currency: str,
 ) -> str:
-    """``P(L > l)`` against ``l`` on a log scale, model and copula, VaR levels marked.
+    """``P(L > l)`` against ``l`` on a log scale, with and without links, VaR marked.
 
     Returns
     -------
@@ -254,15 +287,13 @@ def tail_chart(
     floor = deepest / 20
     curves = []
     for law, colour, label, width in (
-        (copula, COPULA_COLOUR, "copula (no links)", 1.6),
-        (dist, MODEL_COLOUR, "with contagion", 2.0),
+        (plain, PLAIN_COLOUR, WITHOUT_LINKS, 1.6),
+        (dist, MODEL_COLOUR, WITH_LINKS, 2.0),
     ):
-        if law is None:
+        if law is None or law.losses.size < 2:
             continue
-        x, y = _exceedance(law)
+        x, y = exceedance(law)
         keep = y > 0
-        if law.losses.size < 2:
-            continue
         xs, ys = x[keep], y[keep]
         # extend the last positive step to the last atom, where P(L > l) drops to 0
         xs = np.concatenate((xs, [float(law.losses[-1])]))
@@ -286,24 +317,25 @@ def tail_chart(
         a = float(key)
         ax.axhline(1 - a, color="#bbbbbb", linewidth=0.8)
         ax.axvline(var, color=MARK_COLOUR, linestyle="--", linewidth=1)
-        ax.annotate(f"VaR {_pct(a)}", (var, 1 - a), xytext=(4, 4), textcoords="offset points",
-                    color=MARK_COLOUR, fontsize=9)
+        ax.annotate(f"VaR {level_label(a)}", (var, 1 - a), xytext=(4, 4),
+                    textcoords="offset points", color=MARK_COLOUR, fontsize=9)
     if not drawn:
         ax.text(0.5, 0.5, "no loss above the smallest outcome", transform=ax.transAxes,
                 ha="center", color="#555555")
     ax.set_xlabel(f"loss level l ({plain_text(currency)})" if currency else "loss level l")
     ax.set_ylabel("P(loss > l)")
-    _amount_axis(ax)
+    amount_axis(ax)
     if drawn:
-        ax.legend(frameon=False, loc="upper right")
+        ax.legend(frameon=False, loc="upper right", fontsize=9)
     ax.set_title("Tail: probability that the loss exceeds l", loc="left", fontsize=11)
     return png_base64(fig)
 
 
+# ------------------------------------------------------------ measures compared
 def comparison_chart(
-    measures: RiskMeasures, copula: RiskMeasures | None, currency: str
+    measures: RiskMeasures, plain: RiskMeasures | None, currency: str
 ) -> str:
-    """Draw grouped bars of EL, VaR and ES at each level: model against copula.
+    """Draw grouped bars of EL, VaR and ES at each level, with and without links.
 
     Returns
     -------
@@ -313,38 +345,39 @@ def comparison_chart(
     """
     names = ["EL"]
     model_vals = [measures.expected_loss]
-    copula_vals = [copula.expected_loss if copula else np.nan]
+    plain_vals = [plain.expected_loss if plain else np.nan]
     for key in measures.var:
-        names += [f"VaR {_pct(float(key))}", f"ES {_pct(float(key))}"]
+        names += [f"VaR {level_label(key)}", f"ES {level_label(key)}"]
         model_vals += [measures.var[key], measures.expected_shortfall[key]]
-        copula_vals += [
-            copula.var.get(key, np.nan) if copula else np.nan,
-            copula.expected_shortfall.get(key, np.nan) if copula else np.nan,
+        plain_vals += [
+            plain.var.get(key, np.nan) if plain else np.nan,
+            plain.expected_shortfall.get(key, np.nan) if plain else np.nan,
         ]
     fig, ax = new_figure(9.0, 3.8)
     x = np.arange(len(names))
-    width = 0.38 if copula is not None else 0.6
-    if copula is not None:
-        bars_c = ax.bar(x - width / 2, copula_vals, width, color=COPULA_COLOUR,
-                        label="copula (no links)")
-        bars_m = ax.bar(x + width / 2, model_vals, width, color=MODEL_COLOUR,
-                        label="with contagion")
-        ax.bar_label(bars_c, labels=[short_amount(v) for v in copula_vals], fontsize=8,
+    width = 0.38 if plain is not None else 0.6
+    if plain is not None:
+        bars_p = ax.bar(x - width / 2, plain_vals, width, color=PLAIN_COLOUR,
+                        label=WITHOUT_LINKS)
+        bars_m = ax.bar(x + width / 2, model_vals, width, color=MODEL_COLOUR, label=WITH_LINKS)
+        ax.bar_label(bars_p, labels=[short_amount(v) for v in plain_vals], fontsize=8,
                      padding=2, color="#555555")
     else:
-        bars_m = ax.bar(x, model_vals, width, color=MODEL_COLOUR, label="with contagion")
+        bars_m = ax.bar(x, model_vals, width, color=MODEL_COLOUR, label=WITH_LINKS)
     ax.bar_label(bars_m, labels=[short_amount(v) for v in model_vals], fontsize=8, padding=2)
     ax.set_xticks(x, names)
-    ax.set_ylim(bottom=min(0.0, *model_vals, *(v for v in copula_vals if np.isfinite(v))))
+    ax.set_ylim(bottom=min(0.0, *model_vals, *(v for v in plain_vals if np.isfinite(v))))
     ax.set_ylabel(plain_text(currency) if currency else "amount")
-    _amount_axis(ax, "y")
+    amount_axis(ax, "y")
     ax.margins(y=0.12)
-    ax.legend(frameon=False, loc="upper left")
-    title = "Contagion against the copula" if copula is not None else "Risk measures"
+    ax.legend(frameon=False, loc="upper left", fontsize=9)
+    title = ("Risk measures with links against without links" if plain is not None
+             else "Risk measures")
     ax.set_title(title, loc="left", fontsize=11)
     return png_base64(fig)
 
 
+# ------------------------------------------------------------------- uplift
 def uplift_chart(
     labels: Sequence[str],
     own: Sequence[float],
@@ -357,7 +390,7 @@ def uplift_chart(
     labels : sequence of str
         One label per obligor, drawn top to bottom.
     own, uplift : sequence of float
-        Own default probability and final-minus-own uplift.
+        Own default probability and the PD with contagion minus it.
 
     Returns
     -------
@@ -372,12 +405,12 @@ def uplift_chart(
     y = np.arange(n)[::-1]
     own_a = np.asarray(own, dtype=float)
     up_a = np.asarray(uplift, dtype=float)
-    ax.barh(y, own_a, color=COPULA_COLOUR, height=0.7, label="own PD")
+    ax.barh(y, own_a, color=PLAIN_COLOUR, height=0.7, label="own PD")
     ax.barh(y, up_a, left=own_a, color=CONTAGION_COLOUR, height=0.7,
             label="added by contagion")
     ax.set_yticks(y, [plain_text(t) for t in labels], fontsize=8)
     ax.xaxis.set_major_formatter(PercentFormatter(1.0, decimals=None))
-    ax.set_xlabel("final default probability")
+    ax.set_xlabel("PD with contagion")
     ax.set_xlim(left=0)
     ax.legend(frameon=False, loc="lower right", bbox_to_anchor=(1.0, 1.0), ncol=2, fontsize=9)
     ax.set_title("Default probability added by contagion", loc="left", fontsize=11)

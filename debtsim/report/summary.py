@@ -7,6 +7,7 @@ from typing import Any
 from debtsim.link_effects import contagion_effect, rank_links
 from debtsim.output_files import GENERATOR_KEY, generator
 from debtsim.report.run_view import RunView
+from debtsim.report.text import CAUTION
 from debtsim.risk import level_key
 
 __all__ = [
@@ -14,13 +15,6 @@ __all__ = [
     "SUMMARY_LINKS",
     "summary_dict",
 ]
-
-#: Caution printed in every report and stored in ``summary.json``.
-CAUTION = (
-    "These figures are estimates from a statistical model of the book as given; they are not "
-    "investment, credit or regulatory advice. Regulatory and economic capital must be set by "
-    "your supervisor's rules and your institution's approved methods."
-)
 
 #: Links listed in ``summary.json`` under ``contagion.most_contagious_links``.
 SUMMARY_LINKS = 10

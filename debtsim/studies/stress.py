@@ -28,16 +28,11 @@ from debtsim.studies.execution import Execution, run_tasks
 from debtsim.studies.scenarios import BASE_NAME, Scenario, apply_scenario, folder_name
 
 __all__ = [
-    "MOVERS_SHOWN",
     "StressResult",
     "default_probability_table",
     "run_stress",
     "scenario_table",
 ]
-
-#: Obligors listed in the report's "default probabilities that moved most".
-MOVERS_SHOWN = 15
-
 
 @dataclass(frozen=True, eq=False)
 class StressResult:

@@ -17,22 +17,36 @@ reach all of ``T``; summing the same identity over the subsets of ``T`` gives
 the recursion ``g(T) = 1 - sum_{U < T} g(U) prod_{i in T\\U}(1 - s_i)
 prod_{links U -> T\\U}(1 - q)``, with ``g({}) = 1``.  This is the live-edge
 reading of the independent cascade (Kempe, Kleinberg & Tardos, KDD 2003).
-Cost grows as ``3^|S|``: fine for the small cycles of real lending graphs.
+
+The recursion runs level by level in ``|T|``: every subset ``U`` of a
+level-``m`` set has fewer members, so a whole level is one array expression
+over all pairs ``(U, T)`` (``C(s, m) (2^m - 1)`` of them, ``3^s`` in all),
+evaluated for every factor node at once.  The cut factor
+``prod_{links U -> R}(1 - q)`` is ``prod_{c in R} h_c(U)`` with
+``h_c(U) = prod_{d in U, d -> c}(1 - q)``, tabulated once per member.
 """
 
 from __future__ import annotations
 
 from collections.abc import Sequence
+from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
+from scipy import sparse
 
-from debtsim._typing import FloatArray
+from debtsim._typing import FloatArray, IntArray
 
 __all__ = ["MAX_GROUP_SIZE", "group_law", "seed_probability"]
 
-
-#: Largest strongly connected group handled exactly (3^14 ~ 4.8 million subset pairs).
-MAX_GROUP_SIZE = 14
+#: Largest strongly connected group handled exactly (3^18 ~ 3.9e8 subset pairs).
+MAX_GROUP_SIZE = 18
+#: Elements of the largest temporary array (pairs times batch) per step.
+_CHUNK_ELEMENTS = 1 << 22
+#: Groups up to this size keep their cut matrices cached between calls.
+_CACHE_MAX_SIZE = 14
+#: Columns whose smallest no-seed product is below this avoid the division form.
+_SMALLEST_NO_SEED = 1e-280
 
 
 def seed_probability(own: FloatArray, survive: FloatArray) -> FloatArray:
@@ -53,6 +67,98 @@ def seed_probability(own: FloatArray, survive: FloatArray) -> FloatArray:
     return 1.0 - (1.0 - own) * survive
 
 
+def _product_table(factors: FloatArray) -> FloatArray:
+    """``table[mask] = prod_{j in mask} factors[j]`` for every mask (shape (2^s, ...))."""
+    table = np.ones((1,) + factors.shape[1:])
+    for j in range(factors.shape[0]):
+        table = np.concatenate([table, table * factors[j]], axis=0)
+    return table
+
+
+def _inflow_tables(s: int, links: Sequence[tuple[int, int, float]]) -> FloatArray:
+    """``h[c, U] = prod (1 - q)`` over links ``d -> c`` with ``d`` in ``U``, shape (s, 2^s)."""
+    keep = np.ones((s, s))  # keep[c, d]: 1 - q of the link d -> c
+    for d, c, q in links:
+        keep[int(c), int(d)] *= 1.0 - float(q)
+    return _product_table(keep.T).T
+
+
+def _level_masks(s: int) -> list[IntArray]:
+    """Masks of ``s`` bits grouped by their number of set bits."""
+    masks = np.arange(1 << s, dtype=np.int64)
+    count = np.zeros(masks.size, dtype=np.int64)
+    for j in range(s):
+        count += (masks >> j) & 1
+    order = np.argsort(count, kind="stable")
+    bounds = np.searchsorted(count[order], np.arange(s + 2))
+    return [order[bounds[m] : bounds[m + 1]] for m in range(s + 1)]
+
+
+def _subset_pairs(targets: IntArray, m: int) -> tuple[IntArray, IntArray]:
+    """Proper subsets ``U`` of each target (all of size ``m``) and the rests ``T \\ U``.
+
+    Returns arrays of shape ``(targets.size, 2^m - 1)``.
+    """
+    bits = (targets[:, None] >> np.arange(64)[None, :]) & 1
+    rows, cols = np.nonzero(bits)
+    pos = cols.reshape(targets.size, m)  # positions of the set bits, ascending
+    sub = np.arange((1 << m) - 1, dtype=np.int64)
+    choose = (sub[:, None] >> np.arange(m)[None, :]) & 1  # (2^m - 1, m)
+    u = choose @ (np.int64(1) << pos).T  # (2^m - 1, targets)
+    u = np.ascontiguousarray(u.T)
+    return u, targets[:, None] - u
+
+
+@dataclass(frozen=True)
+class _Level:
+    """Targets ``T`` of one size and the sparse matrix ``C[T, U] = cut(U, T \\ U)``, ``U < T``."""
+
+    targets: IntArray
+    cut: sparse.csr_matrix
+
+
+def _cut(inflow: FloatArray, u: IntArray, rest: IntArray) -> FloatArray:
+    """``prod_{links U -> R}(1 - q)`` for arrays of subset pairs."""
+    out = np.ones(u.shape)
+    for c in range(inflow.shape[0]):
+        if np.all(inflow[c] == 1.0):
+            continue
+        hit = ((rest >> c) & 1).astype(bool)
+        out[hit] *= inflow[c][u[hit]]
+    return out
+
+
+def _build_levels(s: int, links: tuple[tuple[int, int, float], ...]) -> list[_Level]:
+    """The recursion's sparse cut matrices, level by level (node-independent)."""
+    inflow = _inflow_tables(s, links)
+    full = 1 << s
+    levels: list[_Level] = []
+    for m, targets in enumerate(_level_masks(s)):
+        if m == 0:
+            continue
+        per_target = (1 << m) - 1
+        step = max(1, _CHUNK_ELEMENTS // per_target)
+        for a in range(0, targets.size, step):
+            t = targets[a : a + step]
+            u, rest = _subset_pairs(t, m)
+            matrix = sparse.csr_matrix(
+                (_cut(inflow, u, rest).ravel(), u.ravel(), np.arange(t.size + 1) * per_target),
+                shape=(t.size, full),
+            )
+            levels.append(_Level(t, matrix))
+    return levels
+
+
+@lru_cache(maxsize=4)
+def _cached_levels(s: int, links: tuple[tuple[int, int, float], ...]) -> list[_Level]:
+    return _build_levels(s, links)
+
+
+def _levels(s: int, links: tuple[tuple[int, int, float], ...]) -> list[_Level]:
+    """Cut matrices, cached for groups whose matrices are small (s <= 14: 4.8e6 entries)."""
+    return _cached_levels(s, links) if s <= _CACHE_MAX_SIZE else _build_levels(s, links)
+
+
 def group_law(
     seed: FloatArray,
     links: Sequence[tuple[int, int, float]],
@@ -71,49 +177,70 @@ def group_law(
     ndarray, shape (..., 2**s)
         ``P(final default set = T)`` with member ``j`` in ``T`` iff bit ``j``
         of the index is set.
+
+    Notes
+    -----
+    With ``n(T) = prod_{i in T}(1 - s_i)`` the recursion reads
+    ``g(T) = 1 - n(T) sum_{U < T} C[T, U] g(U) / n(U)``, a sparse matrix
+    (``C``, independent of the factor) times a dense one (``g / n``, one
+    column per node).  Columns where ``n(S)`` is below ``1e-280`` (a seed
+    certain to within rounding) are computed by the division-free form of
+    the same recursion instead.
     """
     seed = np.asarray(seed, dtype=float)
     s = seed.shape[-1]
     if s > MAX_GROUP_SIZE:
         raise ValueError(f"a group of {s} mutually lending obligors exceeds {MAX_GROUP_SIZE}")
-    full = 1 << s
     batch = seed.shape[:-1]
-    survive_seed = 1.0 - seed  # P(no seed at member j)
-
-    # no_seed[..., mask] = prod_{j in mask} (1 - seed_j)
-    no_seed = np.ones(batch + (full,), dtype=float)
-    for j in range(s):
-        bit = 1 << j
-        idx = np.arange(full)
-        has = (idx & bit) != 0
-        no_seed[..., has] *= survive_seed[..., j : j + 1]
-
-    # cut(U, V) = prod over links from U into V of (1 - q); precomputed per link.
-    link_arr = [(int(d), int(c), float(q)) for d, c, q in links]
-
-    def cut(source: int, target: int) -> float:
-        out = 1.0
-        for d, c, q in link_arr:
-            if (source >> d) & 1 and (target >> c) & 1:
-                out *= 1.0 - q
-        return out
-
-    g = np.zeros(batch + (full,), dtype=float)
-    g[..., 0] = 1.0
-    for t in range(1, full):
-        acc = np.zeros(batch, dtype=float)
-        u = (t - 1) & t  # enumerate proper subsets of t, largest first
-        while True:
-            rest = t & ~u
-            acc = acc + g[..., u] * no_seed[..., rest] * cut(u, rest)
-            if u == 0:
-                break
-            u = (u - 1) & t
-        g[..., t] = 1.0 - acc
-
-    law = np.empty(batch + (full,), dtype=float)
-    for t in range(full):
-        outside = (full - 1) & ~t
-        law[..., t] = g[..., t] * no_seed[..., outside] * cut(t, outside)
+    flat = seed.reshape(-1, s)
+    full = 1 << s
+    key = tuple((int(d), int(c), float(q)) for d, c, q in links)
+    # no_seed[mask, b] = prod_{j in mask} (1 - seed_j); rows are states, columns the batch
+    no_seed = _product_table(np.ascontiguousarray((1.0 - flat).T))
+    safe = no_seed[full - 1] > _SMALLEST_NO_SEED
+    g = np.empty((full, flat.shape[0]))
+    if safe.any():
+        g[:, safe] = _recursion_sparse(_levels(s, key), no_seed[:, safe])
+    if not safe.all():
+        g[:, ~safe] = _recursion_direct(s, key, no_seed[:, ~safe])
+    inflow = _inflow_tables(s, key)
+    states = np.arange(full, dtype=np.int64)
+    outside = (full - 1) & ~states
+    law = g * no_seed[outside] * _cut(inflow, states, outside)[:, None]
     np.clip(law, 0.0, 1.0, out=law)
-    return law
+    return np.ascontiguousarray(law.T).reshape(batch + (full,))
+
+
+def _recursion_sparse(levels: list[_Level], no_seed: FloatArray) -> FloatArray:
+    """``g`` for every state (rows) and column, by the sparse form of the recursion."""
+    ratio = np.zeros(no_seed.shape)  # g / n, filled level by level
+    ratio[0] = 1.0
+    g = np.empty(no_seed.shape)
+    g[0] = 1.0
+    for level in levels:
+        t = level.targets
+        g[t] = 1.0 - no_seed[t] * (level.cut @ ratio)
+        ratio[t] = g[t] / no_seed[t]
+    return g
+
+
+def _recursion_direct(
+    s: int, links: tuple[tuple[int, int, float], ...], no_seed: FloatArray
+) -> FloatArray:
+    """``g`` by the division-free recursion (for columns with a certain seed)."""
+    inflow = _inflow_tables(s, links)
+    width = no_seed.shape[1]
+    g = np.empty((1 << s, width))
+    g[0] = 1.0
+    for m, targets in enumerate(_level_masks(s)):
+        if m == 0:
+            continue
+        per_target = (1 << m) - 1
+        step = max(1, _CHUNK_ELEMENTS // (per_target * max(width, 1)))
+        for a in range(0, targets.size, step):
+            t = targets[a : a + step]
+            u, rest = _subset_pairs(t, m)
+            terms = g[u] * no_seed[rest]  # (targets, subsets, columns)
+            terms *= _cut(inflow, u, rest)[:, :, None]
+            g[t] = 1.0 - terms.sum(axis=1)
+    return g

@@ -137,7 +137,7 @@ class ExactEngine(Engine):
         factor_resolution: float = 1.5,
         factor_order: int = 8,
         grid_points: int = 2**17,
-        max_component_size: int = 16,
+        max_component_size: int = 18,
         exact_support_limit: int = 2**20,
         node_batch: int = 64,
     ) -> None:

@@ -30,6 +30,7 @@ from typing import Any
 
 from yaml.nodes import MappingNode, Node, SequenceNode
 
+from debtsim.book.dependence_section import DEPENDENCE_FIELDS, read_dependence
 from debtsim.book.records import DEFAULT_FACTOR_QUBITS, Book, Link, Obligor
 from debtsim.book.yaml_reader import (
     ProblemSink,
@@ -77,7 +78,7 @@ LINK_FIELDS: tuple[str, ...] = ("creditor", "debtor", "contagion", "amount")
 #: Link fields that must be present.
 REQUIRED_LINK_FIELDS: tuple[str, ...] = ("creditor", "debtor", "contagion")
 #: Keys of the optional ``model`` mapping.
-MODEL_FIELDS: tuple[str, ...] = ("factor_qubits",)
+MODEL_FIELDS: tuple[str, ...] = ("factor_qubits", *DEPENDENCE_FIELDS)
 #: Allowed ``model.factor_qubits`` values, inclusive.
 FACTOR_QUBITS_RANGE: tuple[int, int] = (1, 10)
 
@@ -561,6 +562,8 @@ def _factor_qubits(walker: _Yaml, node: Node, sink: ProblemSink) -> int:
     assert isinstance(node, MappingNode)
     result = DEFAULT_FACTOR_QUBITS
     for key, (key_node, value_node) in (walker.mapping(node, "model") or {}).items():
+        if key in DEPENDENCE_FIELDS:  # checked by dependence_section.read_dependence
+            continue
         if key not in MODEL_FIELDS:
             sink.add(
                 walker.file,
@@ -679,6 +682,15 @@ def _load(path: str, sink: ProblemSink) -> Book | None:
             if link is not None:
                 links.append(link)
 
+    dependence = read_dependence(
+        path,
+        top["model"][1] if "model" in top else None,
+        top["obligors"][1] if "obligors" in top else None,
+        obligors,
+        sink.add,
+        obligors_complete=ids_complete and not sink.problems,
+    )
+
     if sink.problems:
         return None
     return Book(
@@ -688,6 +700,7 @@ def _load(path: str, sink: ProblemSink) -> Book | None:
         links=tuple(links),
         factor_qubits=factor_qubits,
         source=path,
+        dependence=dependence,
     )
 
 

@@ -8,6 +8,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 
+from debtsim.book.dependence import DependenceSpec
+
 __all__ = ["DEFAULT_FACTOR_QUBITS", "Book", "Link", "Obligor"]
 
 #: Factor resolution used when the book does not set ``model.factor_qubits``.
@@ -91,6 +93,9 @@ class Book:
         Factor resolution ``k``: the circuit uses ``2**k`` factor nodes.
     source : str
         Path of the book file as the user gave it.
+    dependence : DependenceSpec or None
+        Sector factors and dependence family from ``model:``; None for the
+        one-factor Gaussian model.
     """
 
     name: str
@@ -99,6 +104,7 @@ class Book:
     links: tuple[Link, ...] = ()
     factor_qubits: int = DEFAULT_FACTOR_QUBITS
     source: str = ""
+    dependence: DependenceSpec | None = None
 
     @property
     def total_exposure(self) -> float:
@@ -114,4 +120,5 @@ class Book:
             links=(),
             factor_qubits=self.factor_qubits,
             source=self.source,
+            dependence=self.dependence,
         )

@@ -22,6 +22,7 @@ from scipy.special import ndtr, ndtri
 
 from debtsim._typing import FloatArray
 from debtsim.book.records import Book
+from debtsim.model.dependence import FactorStructure
 
 __all__ = ["LinkedFactorModel", "conditional_default_probability"]
 
@@ -78,6 +79,9 @@ class LinkedFactorModel:
         Obligor indices of each link.
     contagion : ndarray, shape (m,)
     factor_qubits : int
+    dependence : FactorStructure or None
+        Sector factors and dependence family; None for the one-factor
+        Gaussian model of DESIGN.md (then every engine runs as before).
     """
 
     ids: tuple[str, ...]
@@ -89,6 +93,7 @@ class LinkedFactorModel:
     debtor: IntArray
     contagion: FloatArray
     factor_qubits: int
+    dependence: FactorStructure | None = None
 
     @classmethod
     def from_book(cls, book: Book) -> LinkedFactorModel:
@@ -115,6 +120,11 @@ class LinkedFactorModel:
             debtor=iarr([index[lk.debtor] for lk in book.links]),
             contagion=arr([lk.contagion for lk in book.links]),
             factor_qubits=book.factor_qubits,
+            dependence=FactorStructure.from_spec(
+                book.dependence, [o.sector for o in book.obligors]
+            )
+            if book.dependence is not None
+            else None,
         )
 
     # ------------------------------------------------------------------ sizes
@@ -145,7 +155,7 @@ class LinkedFactorModel:
         return conditional_default_probability(self.pd, self.asset_correlation, z)
 
     def without_links(self) -> LinkedFactorModel:
-        """Return the same obligors with no links: the one-factor Gaussian copula."""
+        """Return the same obligors with no links: the copula of the same factor structure."""
         empty_i = np.zeros(0, dtype=np.int64)
         empty_i.setflags(write=False)
         empty_f = np.zeros(0, dtype=float)
@@ -160,6 +170,7 @@ class LinkedFactorModel:
             debtor=empty_i,
             contagion=empty_f,
             factor_qubits=self.factor_qubits,
+            dependence=self.dependence,
         )
 
     # ------------------------------------------------------------------ graph

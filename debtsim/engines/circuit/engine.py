@@ -173,6 +173,11 @@ class CircuitEngine(Engine):
 
     def refusal(self, model: LinkedFactorModel) -> str | None:
         """Why the circuit engine cannot run ``model``, or None when it can."""
+        if model.dependence is not None:
+            return (
+                f"the circuit engine does not run {model.dependence.describe()} yet; "
+                "use the 'exact' engine"
+            )
         grid = factor_grid_for(model, self.factor_grid)
         k = factor_qubits_of(grid)
         qubits = model.n_obligors + k

@@ -87,6 +87,7 @@ from debtsim.engines.sample.scenario_draws import (
     exact_log_normaliser,
     thresholds,
 )
+from debtsim.errors import EngineRefusedError
 from debtsim.model.specification import LinkedFactorModel
 from debtsim.risk import level_key, value_at_risk, weighted_sample_measures
 
@@ -523,6 +524,15 @@ class SampleEngine(Engine):
         return sampler.run(self.samples, root, progress), plan, seed_value
 
     # ------------------------------------------------------------------ public
+    def refusal(self, model: LinkedFactorModel) -> str | None:
+        """Why the sampler cannot run ``model``, or None when it can."""
+        if model.dependence is not None:
+            return (
+                f"the sample engine does not run {model.dependence.describe()} yet; "
+                "use the 'exact' engine"
+            )
+        return None
+
     def run(
         self, model: LinkedFactorModel, *, progress: ProgressHook | None = None
     ) -> LossDistribution:
@@ -549,6 +559,9 @@ class SampleEngine(Engine):
             obligor; ``effective_sample_size``; ``batches``).
 
         """
+        reason = self.refusal(model)
+        if reason is not None:
+            raise EngineRefusedError(reason)
         scen, plan, seed_value = self._draw(model, progress)
         return self._law(model, scen, plan, seed_value)
 

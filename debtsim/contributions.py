@@ -1,0 +1,242 @@
+r"""Euler risk contributions: each obligor's share of EL, loss std, VaR, ES and capital.
+
+Engines supply :class:`TailMoments`: per obligor the expectations
+``E[L_i]``, ``E[L_i L]``, ``E[L_i 1{L > v}]`` and ``E[L_i 1{L = v}]`` at
+each level's VaR ``v``, each also for the own-default part ``L_i O_i``
+(``O_i`` the obligor's own default; it implies the final default ``D_i``).
+This module turns them into contributions (pure arithmetic, no engine):
+
+* EL: ``E[L_i]``;
+* loss std: ``Cov(L_i, L) / sd(L) = (E[L_i L] - E[L_i] E[L]) / sd(L)``;
+* VaR_a: ``E[L_i | L = v] = E[L_i 1{L = v}] / P(L = v)`` (the law is
+  discrete, so VaR sits on an atom);
+* ES_a: ``(E[L_i 1{L > v}] + E[L_i | L = v] (P(L <= v) - a)) / (1 - a)``,
+  the atom split of Acerbi & Tasche, so the parts add up to ES exactly;
+* economic capital: the book's ``VaR - EL`` shared in proportion to
+  ``ES_i - EL_i``.
+
+Each contribution is linear in ``L_i``, so it splits into the own-default
+part (``L_i O_i``) and the contagion part (``L_i (D_i - O_i)``: defaults
+dragged in along links), the latter obtained as the difference.
+
+References
+----------
+D. Tasche, "Risk contributions and performance measurement", working paper,
+TU Munich (1999).  C. Acerbi and D. Tasche, "On the coherence of expected
+shortfall", Journal of Banking & Finance 26 (2002).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+__all__ = [
+    "Allocation",
+    "TailMoments",
+    "allocate",
+    "contribution_columns",
+    "herfindahl",
+]
+
+FloatArray = NDArray[np.float64]
+
+
+@dataclass(frozen=True, eq=False)
+class TailMoments:
+    """Per-obligor expectations an Euler allocation needs, in currency.
+
+    Attributes
+    ----------
+    levels : tuple of float
+        Confidence levels, ascending.
+    expected_loss, expected_loss_own : ndarray, shape (n,)
+        ``E[L_i]`` and ``E[L_i O_i]``.
+    cross, cross_own : ndarray, shape (n,)
+        ``E[L_i L]`` and ``E[L_i O_i L]``.
+    grid_expected_loss : ndarray, shape (n,)
+        ``E[L_i]`` with the losses the law was computed with (equal to
+        ``expected_loss`` unless the engine rounded losses to a grid); it
+        pairs with ``cross`` in the covariance.
+    tail, tail_own : ndarray, shape (levels, n)
+        ``E[L_i 1{L > v_a}]`` and the own-default part.
+    atom, atom_own : ndarray, shape (levels, n)
+        ``E[L_i 1{L = v_a}]`` and the own-default part.
+    var : ndarray, shape (levels,)
+        ``v_a``, the book's VaR.
+    below, at : ndarray, shape (levels,)
+        ``P(L <= v_a)`` and ``P(L = v_a)``.
+    mean, std : float
+        ``E[L]`` and ``sd(L)`` of the book's law.
+    diagnostics : dict
+        Engine notes on the accuracy of these figures.
+    """
+
+    levels: tuple[float, ...]
+    expected_loss: FloatArray
+    expected_loss_own: FloatArray
+    cross: FloatArray
+    cross_own: FloatArray
+    grid_expected_loss: FloatArray
+    tail: FloatArray
+    tail_own: FloatArray
+    atom: FloatArray
+    atom_own: FloatArray
+    var: FloatArray
+    below: FloatArray
+    at: FloatArray
+    mean: float
+    std: float
+    diagnostics: dict[str, Any] = field(default_factory=dict)
+
+
+@dataclass(frozen=True, eq=False)
+class Allocation:
+    """Risk contributions of every obligor, total and contagion part.
+
+    Attributes
+    ----------
+    levels : tuple of float
+    expected_loss, loss_std : ndarray, shape (n,)
+    var, expected_shortfall, economic_capital : ndarray, shape (levels, n)
+    expected_loss_contagion, loss_std_contagion : ndarray, shape (n,)
+    var_contagion, expected_shortfall_contagion, economic_capital_contagion :
+        ndarray, shape (levels, n)
+        The part carried by defaults dragged in along links.
+    """
+
+    levels: tuple[float, ...]
+    expected_loss: FloatArray
+    loss_std: FloatArray
+    var: FloatArray
+    expected_shortfall: FloatArray
+    economic_capital: FloatArray
+    expected_loss_contagion: FloatArray
+    loss_std_contagion: FloatArray
+    var_contagion: FloatArray
+    expected_shortfall_contagion: FloatArray
+    economic_capital_contagion: FloatArray
+
+    def columns(self) -> dict[str, FloatArray]:
+        """Columns of ``contributions.csv`` after ``id`` and ``sector``, in order."""
+        main: dict[str, FloatArray] = {
+            "expected_loss": self.expected_loss,
+            "loss_std": self.loss_std,
+        }
+        contagion: dict[str, FloatArray] = {
+            "expected_loss_contagion": self.expected_loss_contagion,
+            "loss_std_contagion": self.loss_std_contagion,
+        }
+        for j, a in enumerate(self.levels):
+            for name, total, part in (
+                ("var", self.var, self.var_contagion),
+                ("expected_shortfall", self.expected_shortfall, self.expected_shortfall_contagion),
+                ("economic_capital", self.economic_capital, self.economic_capital_contagion),
+            ):
+                main[f"{name}_{a}"] = total[j]
+                contagion[f"{name}_{a}_contagion"] = part[j]
+        return {**main, **contagion}
+
+
+def contribution_columns(levels: Sequence[float]) -> list[str]:
+    """Measure columns of ``contributions.csv`` for ``levels``, ``irb_capital`` excluded.
+
+    ``expected_loss, loss_std``, then per level ``var_<a>, expected_shortfall_<a>,
+    economic_capital_<a>``, then the same names with ``_contagion`` appended.
+    """
+    main = ["expected_loss", "loss_std"]
+    for a in levels:
+        main += [f"{name}_{float(a)}" for name in ("var", "expected_shortfall", "economic_capital")]
+    return main + [f"{c}_contagion" for c in main]
+
+
+def _parts(m: TailMoments, own: bool) -> tuple[FloatArray, FloatArray, FloatArray, FloatArray]:
+    """EL, std, VaR and ES contributions of the whole loss or of its own-default part."""
+    el = m.expected_loss_own if own else m.expected_loss
+    cross = m.cross_own if own else m.cross
+    tail = m.tail_own if own else m.tail
+    atom = m.atom_own if own else m.atom
+    # the covariance pairs E[L_i L] with E[L_i] in the losses the law was computed with;
+    # E[L_i O_i] / E[L_i] is the same in either loss unit
+    grid_el = m.grid_expected_loss
+    if own:
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ratio = np.where(m.expected_loss > 0, m.expected_loss_own / m.expected_loss, 1.0)
+        grid_el = grid_el * ratio
+    std = (cross - grid_el * m.mean) / m.std if m.std > 0 else np.zeros_like(el)
+    levels = np.asarray(m.levels, dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        var = np.where(m.at[:, None] > 0, atom / m.at[:, None], 0.0)
+    es = (tail + var * (m.below - levels)[:, None]) / (1.0 - levels)[:, None]
+    return el, std, var, es
+
+
+def allocate(m: TailMoments) -> Allocation:
+    """Euler contributions from an engine's moments (see the module notes).
+
+    Parameters
+    ----------
+    m : TailMoments
+
+    Returns
+    -------
+    Allocation
+        Contributions adding up to EL, std, VaR, ES and economic capital of
+        the law the moments came from (VaR on an atom: exactly; economic
+        capital exactly by construction).
+    """
+    el, std, var, es = _parts(m, own=False)
+    el_o, std_o, var_o, es_o = _parts(m, own=True)
+    capital = m.var - m.mean  # the book's VaR - EL per level
+    excess = es - el[None, :]
+    excess_o = es_o - el_o[None, :]
+    total = excess.sum(axis=1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        share = np.where(total[:, None] != 0, excess / total[:, None], 0.0)
+        share_o = np.where(total[:, None] != 0, excess_o / total[:, None], 0.0)
+    ec = capital[:, None] * share
+    ec_o = capital[:, None] * share_o
+    return Allocation(
+        levels=tuple(m.levels),
+        expected_loss=el,
+        loss_std=std,
+        var=var,
+        expected_shortfall=es,
+        economic_capital=ec,
+        expected_loss_contagion=el - el_o,
+        loss_std_contagion=std - std_o,
+        var_contagion=var - var_o,
+        expected_shortfall_contagion=es - es_o,
+        economic_capital_contagion=ec - ec_o,
+    )
+
+
+def herfindahl(exposure: FloatArray, labels: Sequence[str] | None = None) -> float:
+    """Herfindahl–Hirschman index of exposures: ``sum (EAD_k / EAD)^2``.
+
+    Parameters
+    ----------
+    exposure : ndarray, shape (n,)
+        EAD of each obligor.
+    labels : sequence of str, optional
+        Group of each obligor (e.g. its sector); exposures are summed per
+        group first.  Without labels: name concentration.
+
+    Returns
+    -------
+    float
+        In ``(0, 1]``; ``1 / n`` for ``n`` equal exposures.
+    """
+    ead = np.asarray(exposure, dtype=float)
+    total = float(ead.sum())
+    if total <= 0:
+        return 0.0
+    if labels is not None:
+        _, inverse = np.unique(np.asarray(list(labels), dtype=object), return_inverse=True)
+        ead = np.bincount(inverse.ravel(), weights=ead)
+    share = ead / total
+    return float(np.sum(share * share))

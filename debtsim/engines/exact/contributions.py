@@ -1,0 +1,567 @@
+r"""Risk contributions on the ``exact`` engine, exact on its factor nodes.
+
+Given the factor ``z``, obligors outside link groups are independent
+Bernoulli losses and each link group is independent of the rest.  The
+contributions need, per node, ``E[D_i f(L) | z]`` for ``f = 1{L <= v}`` and
+``f = 1{L = v}`` at each level's VaR ``v``, which in turn needs the law of
+the rest of the book ``L - L_i``.
+
+*Single obligors* (one Bernoulli factor ``1 - p + p x^k`` of the
+conditional PGF).  Removing the factor from the law of ``L`` by the power
+series of ``1 / (1 - p + p x^k)`` gives, for ``p <= 1/2`` and
+``theta = p / (1 - p)``::
+
+    E[D 1{L <= v}] = sum_{r >= 1} (-1)^(r+1) theta^r P(L <= v - r k)
+    E[D 1{L =  v}] = sum_{r >= 1} (-1)^(r+1) theta^r P(L =  v - r k)
+
+and, for ``p > 1/2`` with ``theta' = (1 - p) / p`` (the series in ``x^-k``),
+``E[(1 - D) 1{L > v}] = sum_r (-1)^(r+1) theta'^r P(L > v + r k)`` and the
+same for the atom.  Both are finite sums (the law has bounded support), the
+terms alternate and shrink like ``theta^r <= 1``, so the sums are stable:
+the forward deconvolution is stable for ``p < 1/2`` and the backward one for
+``p > 1/2``, which is how the factor is removed here.  Terms stop when
+``theta^r`` drops below :data:`SERIES_TOLERANCE` or the shifted point leaves
+the support.  Obligors with equal conditional PD and grid loss (the
+engine's classes) are computed once.
+
+*Link groups* (a general factor ``Q_g(x) = sum_s P(s | z) x^(k_s)``): the law
+of the rest of the book is the product of the other factors, formed from
+prefix and suffix products of the group spectra on the node's window (grid
+mode) or by convolving the other items (exact-atoms mode); then
+``E[D_i f(L)] = sum_s P(s) D_i(s) E[f(k_s + L_rest)]``.
+
+*Own default versus contagion.*  The own-default part ``E[O_i f(L)]`` is
+``p_i`` times the same sum over the group law with ``i``'s own default
+forced (seed probability 1); outside link groups the two coincide.
+
+*VaR on a continuous stretch.*  On the loss grid the law is discrete, so VaR
+is an atom of width one grid unit; ``E[L_i | L = v]`` on that atom is a
+window (kernel) estimate of the continuous contribution
+``E[L_i | L = VaR]`` with bandwidth one unit.  Its sensitivity to the
+window is reported as ``var_window_sensitivity``: the largest change of an
+obligor's VaR contribution, relative to VaR, when the window is widened to
+three grid points (``v - 1 .. v + 1``).
+
+References
+----------
+L. Andersen, J. Sidenius and S. Basu, "All your hedges in one basket",
+Risk (2003).  D. Tasche, "Risk contributions and performance measurement"
+(1999).  C. Acerbi and D. Tasche, J. Banking & Finance 26 (2002).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from typing import Any
+
+import numpy as np
+import scipy.fft as sfft
+from numpy.typing import NDArray
+
+from debtsim.contributions import TailMoments
+from debtsim.distribution import LossDistribution
+from debtsim.engines.exact.engine import (
+    _NOISE_FLOOR,
+    ExactEngine,
+    _all_group_laws,
+    _choose_losses,
+    _Group,
+    _group_state_law,
+    _link_groups,
+    _LossPlan,
+    _state_bits,
+)
+from debtsim.engines.exact.loss_grid import (
+    bernstein_halfwidth,
+    grid_law,
+    place_window,
+)
+from debtsim.errors import EngineRefusedError
+from debtsim.model.factor_grid import FactorGrid
+from debtsim.model.specification import LinkedFactorModel, conditional_default_probability
+from debtsim.risk import value_at_risk
+
+__all__ = ["SERIES_TOLERANCE", "bernoulli_functionals", "exact_moments"]
+
+FloatArray = NDArray[np.float64]
+IntArray = NDArray[np.int64]
+
+#: Smallest ``theta^r`` kept in the deconvolution series.
+SERIES_TOLERANCE = 1e-18
+
+#: ``lookup(positions) -> (P(L <= x), P(L = x))`` on one node's law.
+Lookup = Callable[[FloatArray], tuple[FloatArray, FloatArray]]
+
+
+def bernoulli_functionals(
+    p: FloatArray,
+    k: FloatArray,
+    points: Sequence[float],
+    lookup: Lookup,
+    span: tuple[float, float],
+) -> tuple[FloatArray, FloatArray]:
+    """``E[D 1{L <= x}]`` and ``E[D 1{L = x}]`` for independent Bernoulli addends of ``L``.
+
+    Parameters
+    ----------
+    p : ndarray, shape (c,)
+        Conditional default probability of each class.
+    k : ndarray, shape (c,)
+        Loss of one obligor of the class (``> 0``), in the units of ``points``.
+    points : sequence of float
+        The points ``x`` (one per level).
+    lookup : callable
+        CDF and atom of the node's law of ``L`` at arbitrary points.
+    span : (float, float)
+        Smallest and largest point of the law's support.
+
+    Returns
+    -------
+    below, atom : ndarray, shape (len(points), c)
+        See the module notes for the series.
+    """
+    c = p.size
+    m = len(points)
+    below = np.zeros((m, c))
+    atom = np.zeros((m, c))
+    if c == 0:
+        return below, atom
+    pts = np.asarray(points, dtype=float)
+    cdf_x, atom_x = lookup(pts)
+    certain = p >= 1.0
+    below[:, certain] = cdf_x[:, None]
+    atom[:, certain] = atom_x[:, None]
+    for flip in (False, True):
+        sel = np.flatnonzero(((p > 0.5) if flip else (p <= 0.5)) & (p > 0.0) & ~certain)
+        if sel.size == 0:
+            continue
+        pp, kk = p[sel], k[sel]
+        theta = (1.0 - pp) / pp if flip else pp / (1.0 - pp)
+        with np.errstate(divide="ignore"):
+            log_theta = np.log(theta)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            need = np.where(
+                theta < 1.0, np.ceil(np.log(SERIES_TOLERANCE) / log_theta), np.inf
+            )
+        for j in range(m):
+            room = (span[1] - pts[j]) if flip else (pts[j] - span[0])
+            reach = np.floor(np.maximum(room, -1.0) / kk + 1e-9) + 1.0
+            terms = np.minimum(need, np.maximum(reach, 0.0)).astype(np.int64)
+            total = int(terms.sum())
+            if total == 0:
+                s1 = np.zeros(sel.size)
+                s2 = np.zeros(sel.size)
+            else:
+                owner = np.repeat(np.arange(sel.size), terms)
+                first = np.cumsum(terms) - terms
+                r = np.arange(total) - np.repeat(first, terms) + 1
+                coef = np.exp(r * log_theta[owner])
+                coef[(r % 2) == 0] *= -1.0
+                x = pts[j] + r * kk[owner] if flip else pts[j] - r * kk[owner]
+                f, a = lookup(x)
+                if flip:
+                    f = 1.0 - f
+                s1 = np.bincount(owner, weights=coef * f, minlength=sel.size)
+                s2 = np.bincount(owner, weights=coef * a, minlength=sel.size)
+            if flip:
+                # E[D 1{L <= v}] = p - E[D 1{L > v}] = p - (P(L > v) - E[(1-D) 1{L > v}])
+                below[j, sel] = pp - ((1.0 - cdf_x[j]) - s1)
+                atom[j, sel] = atom_x[j] - s2
+            else:
+                below[j, sel] = s1
+                atom[j, sel] = s2
+    return below, atom
+
+
+class _Accumulator:
+    """Running per-obligor sums over factor nodes (in grid units where relevant)."""
+
+    def __init__(self, n: int, levels: int) -> None:
+        self.below = np.zeros((levels, n))
+        self.below_own = np.zeros((levels, n))
+        self.atom = np.zeros((levels, n))
+        self.atom_own = np.zeros((levels, n))
+        self.window = np.zeros((levels, n))
+        self.cross = np.zeros(n)
+        self.cross_own = np.zeros(n)
+        self.final = np.zeros(n)
+        self.own = np.zeros(n)
+        self.mass = 0.0
+
+
+def exact_moments(
+    engine: ExactEngine,
+    model: LinkedFactorModel,
+    dist: LossDistribution,
+    levels: Sequence[float],
+) -> TailMoments:
+    """Moments for the Euler allocation of a law the exact engine computed.
+
+    Parameters
+    ----------
+    engine : ExactEngine
+        The engine (and settings) that computed ``dist``.
+    model : LinkedFactorModel
+    dist : LossDistribution
+        Its law of ``model``.
+    levels : sequence of float
+        Confidence levels.
+
+    Returns
+    -------
+    TailMoments
+        ``diagnostics`` carry ``var_window_sensitivity`` (grid mode).
+    """
+    reason = engine.refusal(model)
+    if reason is not None:
+        raise EngineRefusedError(reason)
+    levels = tuple(sorted(float(a) for a in levels))
+    grid = engine.factor_grid if engine.factor_grid is not None else engine.default_factor_grid(
+        model
+    )
+    groups = _link_groups(model)
+    in_group = np.zeros(model.n_obligors, dtype=bool)
+    for g in groups:
+        in_group[g.members] = True
+    single = np.flatnonzero(~in_group)
+    loss = np.asarray(model.loss_given_default, dtype=float)
+    plan = _choose_losses(
+        loss, model.pd, model.asset_correlation, single, groups,
+        engine.grid_points, engine.exact_support_limit,
+    )
+    var = np.array([value_at_risk(dist, a) for a in levels])
+    cdf = dist.cdf
+    at_idx = np.searchsorted(dist.losses, var)
+    below = cdf[at_idx]
+    at = dist.probabilities[at_idx]
+    acc = _Accumulator(model.n_obligors, len(levels))
+    if plan.mode == "atoms":
+        unit = 1.0
+        grid_loss = loss
+        _atoms_pass(model, grid, single, groups, plan, var, acc, engine.node_batch)
+        diagnostics: dict[str, Any] = {"var_window_sensitivity": 0.0}
+    else:
+        unit = float(dist.settings.get("grid_unit") or plan.unit)
+        grid_loss = unit * plan.k.astype(float)
+        points = np.round(var / unit).astype(np.int64)
+        _grid_pass(model, grid, single, groups, plan, points, acc, engine.node_batch)
+        diagnostics = {}
+    mass = acc.mass
+    tail = grid_loss[None, :] * (acc.final[None, :] - acc.below) / mass
+    tail_own = grid_loss[None, :] * (acc.own[None, :] - acc.below_own) / mass
+    atom = grid_loss[None, :] * acc.atom / mass
+    atom_own = grid_loss[None, :] * acc.atom_own / mass
+    if plan.mode != "atoms":
+        # window of three grid points around VaR: its mass from the law
+        wide = np.array([
+            float(dist.probabilities[np.abs(dist.losses - v) <= 1.5 * unit].sum()) for v in var
+        ])
+        with np.errstate(divide="ignore", invalid="ignore"):
+            var_atom = np.where(at[:, None] > 0, atom / at[:, None], 0.0)
+            var_wide = np.where(
+                wide[:, None] > 0, grid_loss[None, :] * acc.window / mass / wide[:, None], 0.0
+            )
+        scale = np.where(var > 0, var, 1.0)[:, None]
+        diagnostics["var_window_sensitivity"] = float(
+            np.max(np.abs(var_atom - var_wide) / scale)
+        ) if var_atom.size else 0.0
+    final_pd = np.asarray(dist.default_probability, dtype=float)
+    own_pd = acc.own / mass
+    own_pd[single] = final_pd[single]  # no links: every default is the obligor's own
+    diagnostics["series_tolerance"] = SERIES_TOLERANCE
+    return TailMoments(
+        levels=levels,
+        expected_loss=loss * final_pd,
+        expected_loss_own=loss * np.minimum(own_pd, final_pd),
+        cross=unit * grid_loss * acc.cross / mass,
+        cross_own=unit * grid_loss * acc.cross_own / mass,
+        grid_expected_loss=grid_loss * acc.final / mass,
+        tail=tail,
+        tail_own=tail_own,
+        atom=atom,
+        atom_own=atom_own,
+        var=var,
+        below=below,
+        at=at,
+        mean=dist.mean,
+        std=dist.std,
+        diagnostics=diagnostics,
+    )
+
+
+# ====================================================================== link groups
+def _forced_laws(group: _Group, own: FloatArray) -> list[FloatArray]:
+    """Group state laws with each member's own default forced, times its own PD."""
+    out = []
+    for m in range(group.members.size):
+        forced = own.copy()
+        forced[:, m] = 1.0
+        out.append(own[:, m : m + 1] * _group_state_law(group, forced))
+    return out
+
+
+def _group_terms(
+    acc: _Accumulator,
+    group: _Group,
+    law: FloatArray,
+    forced: list[FloatArray],
+    w: float,
+    rest_below: FloatArray,
+    rest_atom: FloatArray,
+    rest_window: FloatArray | None,
+    rest_mean: float,
+    state_loss: FloatArray,
+) -> None:
+    """Add one node's group terms.
+
+    ``rest_below[l, s]`` is ``P(k_s + L_rest <= v_l)``, ``rest_atom`` the atom,
+    ``state_loss`` the group's loss in each state (the law's units).
+    """
+    bits = _state_bits(group.members.size).astype(float)
+    members = group.members
+    lw = law * w
+    acc.final[members] += lw @ bits
+    acc.below[:, members] += (rest_below * lw[None, :]) @ bits
+    acc.atom[:, members] += (rest_atom * lw[None, :]) @ bits
+    if rest_window is not None:
+        acc.window[:, members] += (rest_window * lw[None, :]) @ bits
+    acc.cross[members] += (lw * (state_loss + rest_mean)) @ bits
+    for m, fl in enumerate(forced):
+        fw = fl * w
+        i = members[m]
+        acc.own[i] += fw.sum()
+        acc.below_own[:, i] += rest_below @ fw
+        acc.atom_own[:, i] += rest_atom @ fw
+        acc.cross_own[i] += fw @ (state_loss + rest_mean)
+
+
+# ====================================================================== atoms mode
+def _atoms_pass(
+    model: LinkedFactorModel,
+    grid: FactorGrid,
+    single: IntArray,
+    groups: Sequence[_Group],
+    plan: _LossPlan,
+    var: FloatArray,
+    acc: _Accumulator,
+    batch: int,
+) -> None:
+    """Exact loss values: per-node laws on the shared support (see the engine)."""
+    assert plan.atoms is not None
+    atoms = plan.atoms
+    loss = model.loss_given_default
+    lossy_single = single[loss[single] > 0]
+    order = np.argsort(atoms.support, kind="stable")
+    support = atoms.support[order]
+    tol = 0.5 * atoms._quantum
+    span = (float(support[0]), float(support[-1]))
+    size = support.size
+    step = max(1, min(batch, (1 << 22) // max(size, 1)))
+
+    def lookup_of(law: FloatArray) -> Lookup:
+        cum = np.cumsum(law)
+
+        def lookup(x: FloatArray) -> tuple[FloatArray, FloatArray]:
+            i = np.searchsorted(support, x + tol, side="right") - 1
+            f = np.where(i >= 0, cum[np.maximum(i, 0)], 0.0)
+            j = np.minimum(np.searchsorted(support, x - tol, side="left"), size - 1)
+            a = np.where(np.abs(support[j] - x) <= tol, law[j], 0.0)
+            return f, a
+
+        return lookup
+
+    for start in range(0, len(grid), step):
+        z = grid.nodes[start : start + step]
+        ws = grid.weights[start : start + step]
+        own = model.conditional_pd(z)
+        item_laws: list[FloatArray] = [
+            np.stack([1.0 - own[:, i], own[:, i]], axis=1) for i in lossy_single.tolist()
+        ]
+        glaws = [_group_state_law(g, own[:, g.members]) for g in groups]
+        item_laws += glaws
+        probs = atoms.apply(item_laws)[:, order] if item_laws else np.ones((z.size, 1))
+        rest_probs = []
+        for gi in range(len(groups)):
+            laws = list(item_laws)
+            delta = np.zeros_like(glaws[gi])
+            delta[:, 0] = 1.0
+            laws[len(lossy_single) + gi] = delta
+            rest_probs.append(atoms.apply(laws)[:, order])
+        means = probs @ support
+        for j in range(z.size):
+            w = float(ws[j])
+            law = probs[j]
+            acc.mass += w * float(law.sum())
+            lookup = lookup_of(law)
+            p = own[j]
+            acc.own[single] += w * p[single]
+            acc.final[single] += w * p[single]
+            ps = p[lossy_single]
+            below, atom = bernoulli_functionals(ps, loss[lossy_single], var, lookup, span)
+            acc.below[:, lossy_single] += w * below
+            acc.below_own[:, lossy_single] += w * below
+            acc.atom[:, lossy_single] += w * atom
+            acc.atom_own[:, lossy_single] += w * atom
+            cross = ps * (loss[lossy_single] + means[j] - ps * loss[lossy_single])
+            acc.cross[lossy_single] += w * cross
+            acc.cross_own[lossy_single] += w * cross
+            for gi, g in enumerate(groups):
+                state_loss = _state_bits(g.members.size).astype(float) @ loss[g.members]
+                glaw = glaws[gi][j]
+                rest_lookup = lookup_of(rest_probs[gi][j])
+                rb = np.empty((var.size, state_loss.size))
+                ra = np.empty((var.size, state_loss.size))
+                for li, v in enumerate(var):
+                    rb[li], ra[li] = rest_lookup(v - state_loss)
+                forced = [f[0] for f in _forced_laws(g, own[j : j + 1, g.members])]
+                rest_mean = float(means[j] - glaw @ state_loss)
+                _group_terms(acc, g, glaw, forced, w, rb, ra, None, rest_mean, state_loss)
+
+
+# ====================================================================== grid mode
+def _grid_pass(
+    model: LinkedFactorModel,
+    grid: FactorGrid,
+    single: IntArray,
+    groups: Sequence[_Group],
+    plan: _LossPlan,
+    points: IntArray,
+    acc: _Accumulator,
+    batch: int,
+) -> None:
+    """Loss grid: the engine's node laws on their windows, then the series per class."""
+    k_all = plan.k
+    top = plan.top
+    pr_keys = np.stack([model.pd, model.asset_correlation], axis=1)
+    pr_unique, pr_of = np.unique(pr_keys, axis=0, return_inverse=True)
+    pr_of = pr_of.ravel()
+    lossy_single = single[k_all[single] > 0]
+    loss_keys = np.stack([pr_of[lossy_single], k_all[lossy_single]], axis=1)
+    cls, cls_of, cls_count = np.unique(loss_keys, axis=0, return_inverse=True, return_counts=True)
+    cls_of = cls_of.ravel()
+    cls_pr = cls[:, 0]
+    cls_k = cls[:, 1].astype(np.int64)
+    cls_count = cls_count.astype(float)
+    cls_kc = cls_k * cls_count
+    cls_k2c = cls_k.astype(float) ** 2 * cls_count
+    scratch = np.zeros(model.n_obligors)
+    glaws = _all_group_laws(groups, model, pr_unique, pr_of, k_all, grid, scratch)
+    group_bits = [_state_bits(g.members.size) for g in groups]
+    group_pos = [b.astype(np.int64) @ k_all[g.members] for b, g in zip(group_bits, groups,
+                                                                        strict=True)]
+    nodes, weights = grid.nodes, grid.weights
+    lev = points.size
+    wide_points = np.concatenate([points - 2, points + 1])  # window v-1..v+1 from two CDFs
+    for start in range(0, len(grid), batch):
+        z = nodes[start : start + batch]
+        ws = weights[start : start + batch]
+        p_pr = conditional_default_probability(pr_unique[:, 0], pr_unique[:, 1], z)
+        own_all = model.conditional_pd(z) if groups else None
+        for j in range(z.size):
+            w = float(ws[j])
+            at = start + j
+            p = p_pr[j, cls_pr]
+            mean = float(np.sum(p * cls_kc))
+            var = float(np.sum(p * (1.0 - p) * cls_k2c))
+            moving = (p > 0) & (p < 1)
+            bound = float(cls_k[moving].max()) if moving.any() else 0.0
+            lowest = int(np.sum(cls_kc[p >= 1]))
+            highest = int(np.sum(cls_kc[p > 0]))
+            if groups:
+                mean += float(glaws.mean[at])
+                var += float(glaws.var[at])
+                lowest += int(glaws.low[at])
+                highest += int(glaws.high[at])
+                bound = max(bound, glaws.bound)
+            half = bernstein_halfwidth(var, bound)
+            window = place_window(mean, half, lowest, highest, top)
+            width = window.width
+            singles_law, _ = grid_law(cls_k, p, window, count=cls_count)
+            if groups:
+                spectra = []
+                for pos, merged in zip(glaws.positions, glaws.merged, strict=True):
+                    folded = np.bincount(np.mod(pos, width), weights=merged[at], minlength=width)
+                    spectra.append(sfft.rfft(folded))
+                base = sfft.rfft(singles_law)
+                total = base.copy()
+                for s in spectra:
+                    total *= s
+                law = sfft.irfft(total, width)
+            else:
+                law = singles_law
+            law[: max(lowest - window.start, 0)] = 0.0
+            law[max(highest + 1 - window.start, 0) :] = 0.0
+            law[law < _NOISE_FLOOR * law.max()] = 0.0
+            acc.mass += w * float(law.sum())
+            cum = np.cumsum(law)
+            lo_pos = float(max(lowest - window.start, 0))
+            hi_pos = float(min(highest - window.start, width - 1))
+
+            def lookup(x: FloatArray, cum: FloatArray = cum, law: FloatArray = law,
+                       width: int = width) -> tuple[FloatArray, FloatArray]:
+                xi = np.asarray(x, dtype=np.int64)
+                inside = (xi >= 0) & (xi < width)
+                xc = np.clip(xi, 0, width - 1)
+                f = np.where(inside, cum[xc], np.where(xi >= width, 1.0, 0.0))
+                a = np.where(inside, law[xc], 0.0)
+                return f, a
+
+            rel = (points - window.start).astype(float)
+            # single obligors, one class at a time
+            pc = p
+            below, atom = bernoulli_functionals(pc, cls_k.astype(float), rel, lookup,
+                                                (lo_pos, hi_pos))
+            wide_b, _ = bernoulli_functionals(
+                pc, cls_k.astype(float), (wide_points - window.start).astype(float), lookup,
+                (lo_pos, hi_pos),
+            )
+            o = lossy_single
+            co = cls_of
+            acc.final[o] += w * pc[co]
+            acc.own[o] += w * pc[co]
+            acc.below[:, o] += w * below[:, co]
+            acc.below_own[:, o] += w * below[:, co]
+            acc.atom[:, o] += w * atom[:, co]
+            acc.atom_own[:, o] += w * atom[:, co]
+            wnd = wide_b[lev:] - wide_b[:lev]
+            acc.window[:, o] += w * wnd[:, co]
+            cross = pc * (cls_k + mean - pc * cls_k)
+            acc.cross[o] += w * cross[co]
+            acc.cross_own[o] += w * cross[co]
+            if not groups:
+                continue
+            assert own_all is not None
+            n_g = len(groups)
+            prefix = [base]
+            for s in spectra[:-1]:
+                prefix.append(prefix[-1] * s)
+            suffix = [np.ones_like(base)] * n_g
+            for gi in range(n_g - 2, -1, -1):
+                suffix[gi] = suffix[gi + 1] * spectra[gi + 1]
+            for gi, g in enumerate(groups):
+                rest = sfft.irfft(prefix[gi] * suffix[gi], width)
+                c2 = np.concatenate(([0.0], np.cumsum(np.concatenate((rest, rest)))))
+                pos = group_pos[gi]
+                b = np.mod(-pos, width)
+
+                def rest_cdf(v_rel: float, b: IntArray = b, c2: FloatArray = c2,
+                             width: int = width) -> FloatArray:
+                    if v_rel < 0:
+                        return np.zeros(b.size)
+                    if v_rel >= width:
+                        return np.ones(b.size) * c2[width]
+                    vi = int(v_rel)
+                    return c2[b + vi + 1] - c2[b]
+
+                rb = np.stack([rest_cdf(float(v)) for v in rel])
+                ra = np.stack([
+                    rest[np.mod(int(v) - pos, width)] if 0 <= v < width else np.zeros(pos.size)
+                    for v in rel
+                ])
+                wb = np.stack([rest_cdf(float(v)) for v in (wide_points - window.start)])
+                rw = wb[lev:] - wb[:lev]
+                own_g = own_all[j : j + 1, g.members]
+                glaw = _group_state_law(g, own_g)[0]
+                forced = [f[0] for f in _forced_laws(g, own_g)]
+                rest_mean = mean - float(glaw @ pos)
+                _group_terms(acc, g, glaw, forced, w, rb, ra, rw, rest_mean, pos.astype(float))

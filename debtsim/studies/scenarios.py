@@ -31,6 +31,7 @@ import re
 from collections.abc import Mapping
 from dataclasses import dataclass, field, replace
 from pathlib import Path
+from typing import Any
 
 from yaml.nodes import MappingNode, Node, SequenceNode
 
@@ -190,6 +191,21 @@ class Scenario:
     sectors: tuple[tuple[str, SectorShock], ...] = ()
     defaulted: tuple[str, ...] = ()
     line: int | None = field(default=None, compare=False)
+
+    @classmethod
+    def from_values(cls, name: str, values: Mapping[str, float]) -> Scenario:
+        """A scenario named ``name`` setting global fields (:data:`GLOBAL_FIELDS`) to ``values``.
+
+        Raises
+        ------
+        ValueError
+            For a name outside :data:`GLOBAL_FIELDS` or a value out of range.
+        """
+        unknown = sorted(set(values) - set(GLOBAL_FIELDS))
+        if unknown:
+            raise ValueError(f"not a global scenario field: {', '.join(unknown)}")
+        changes: dict[str, Any] = {k: float(v) for k, v in values.items()}
+        return replace(cls(name=name), **changes)
 
     def __post_init__(self) -> None:
         for name in GLOBAL_FIELDS:

@@ -312,7 +312,7 @@ def evaluate_point(book: Book, task: PointTask) -> dict[str, Any]:
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:
-            scenario = Scenario(name=task.key, **task.values)
+            scenario = Scenario.from_values(task.key, task.values)
             analysis = run_book(apply_scenario(book, scenario), task.options)
             out["engine"] = analysis.engine
             out["measures"] = analysis.measures.as_row()

@@ -94,7 +94,7 @@ def _loss_atoms(probs: FloatArray, loss_each: FloatArray) -> tuple[FloatArray, F
         keep = p > 0.0
         codes, uniq = pd.factorize(low[keep] + high[j])
         losses.append(np.asarray(uniq, dtype=float))
-        weights.append(np.bincount(codes, weights=p[keep], minlength=len(uniq)))
+        weights.append(np.bincount(codes, weights=p[keep], minlength=len(uniq)).astype(float))
     return np.concatenate(losses), np.concatenate(weights)
 
 

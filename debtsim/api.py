@@ -25,7 +25,7 @@ import pandas as pd
 from debtsim.book.loader import load_book
 from debtsim.book.records import Book
 from debtsim.errors import DebtsimError
-from debtsim.options import DEFAULT_LEVELS, DEFAULT_SEED, RunOptions
+from debtsim.options import DEFAULT_LEVELS, DEFAULT_SEED, RunOptions, validate_levels
 from debtsim.output_files import check_output_dir
 from debtsim.runner import ProgressFactory, RunResult, run_book
 from debtsim.studies.execution import Execution
@@ -35,6 +35,8 @@ from debtsim.studies.sweep import GridAxis, SweepResult, parse_grid, partial_dir
 
 if TYPE_CHECKING:
     from qiskit import QuantumCircuit
+
+    from debtsim.model.specification import LinkedFactorModel
 
 __all__ = [
     "CircuitReport",
@@ -65,7 +67,7 @@ def _options(
         samples=samples,
         seed=seed,
         shots=shots,
-        levels=tuple(levels),
+        levels=validate_levels(levels, name="levels"),
         copula=copula,
     )
 
@@ -307,6 +309,8 @@ class CircuitReport:
         Size after transpiling to u/cx.
     refusal : str or None
         Why ``run --engine circuit`` would refuse the book; None when it runs.
+    model : LinkedFactorModel
+        The model the circuit encodes.
     """
 
     circuit: QuantumCircuit
@@ -316,12 +320,17 @@ class CircuitReport:
     depth: int
     two_qubit_gates: int
     refusal: str | None
+    model: LinkedFactorModel
 
     def qasm(self) -> str:
-        """Return the circuit as OpenQASM 3 text."""
-        from debtsim.engines.circuit.builder import to_qasm3
+        """Return the circuit as OpenQASM 3 text, with the obligor register measured.
 
-        return to_qasm3(self.circuit)
+        Run on any simulator or device, each shot is one scenario of final
+        defaults (a bit per obligor, in book order).
+        """
+        from debtsim.engines.circuit.builder import build_circuit, to_qasm3
+
+        return to_qasm3(build_circuit(self.model, measure=True))
 
 
 def circuit_report(book: Book) -> CircuitReport:
@@ -348,4 +357,5 @@ def circuit_report(book: Book) -> CircuitReport:
         depth=int(size.depth),
         two_qubit_gates=int(size.two_qubit_gates),
         refusal=refusal,
+        model=model,
     )

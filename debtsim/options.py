@@ -53,16 +53,21 @@ def validate_level(level: float, *, name: str = "level") -> float:
 
 
 def validate_levels(levels: Iterable[float] | None, *, name: str = "level") -> tuple[float, ...]:
-    """Sorted distinct confidence levels, or :data:`DEFAULT_LEVELS` when none are given.
+    """Sorted distinct confidence levels; :data:`DEFAULT_LEVELS` when ``levels`` is None.
 
     Raises
     ------
     OptionError
-        When a level is not strictly between 0 and 1.
+        When ``levels`` is not a collection of numbers, is empty, or holds a
+        level not strictly between 0 and 1.
     """
-    values = [validate_level(a, name=name) for a in (levels or ())]
-    if not values:
+    if levels is None:
         return DEFAULT_LEVELS
+    if isinstance(levels, (str, bytes)) or not isinstance(levels, Iterable):
+        raise OptionError(name, f"must be a list of levels such as (0.99, 0.999), got {levels!r}")
+    values = [validate_level(a, name=name) for a in levels]
+    if not values:
+        raise OptionError(name, "give at least one confidence level, e.g. (0.99, 0.999)")
     return tuple(sorted(set(values)))
 
 

@@ -109,6 +109,7 @@ def test_options_checked_with_the_root_error() -> None:
     """Bad options raise OptionError, a DebtsimError and a ValueError, naming the option."""
     book = debtsim.load_book(HARBOUR)
     for kwargs, option in (({"levels": (1.5,)}, "levels"), ({"samples": 0}, "samples"),
+                           ({"levels": 0.99}, "levels"), ({"levels": []}, "levels"),
                            ({"seed": -1}, "seed"), ({"engine": "quantum"}, "engine")):
         with pytest.raises(debtsim.OptionError) as caught:
             debtsim.run(book, **kwargs)  # type: ignore[arg-type]
@@ -130,3 +131,12 @@ def test_stress_and_sweep_return_tables() -> None:
     assert g.attrs["sweep"]["computed"] == 2 and g.attrs["sweep"]["folder"] is None
     with pytest.raises(debtsim.BookError):
         debtsim.sweep(book, {"pd_scal": [1.0]})
+
+
+def test_circuit_report_exports_measured_obligors(harbour_book: debtsim.Book) -> None:
+    """The OpenQASM 3 export measures every obligor qubit, so each shot is a scenario."""
+    report = debtsim.circuit_report(harbour_book)
+    text = report.qasm()
+    assert text.startswith("OPENQASM 3")
+    assert text.count("measure") == len(harbour_book.obligors)
+    assert report.refusal is None and report.qubits == report.factor_qubits + report.obligors

@@ -1,7 +1,7 @@
 """Engines computing the loss law of a :class:`~debtsim.model.specification.LinkedFactorModel`.
 
 ``circuit``: the entangling circuit on Aer's statevector simulator (small books).
-``exact``: semi-analytic, conditional on factor nodes, exact per link component.
+``exact``: semi-analytic, conditional on factor nodes, exact per linked group.
 ``sample``: classical cascade sampler with importance sampling in the tail.
 ``auto``: picks one from the book's size; :func:`choose_engine` says why.
 """
@@ -78,7 +78,7 @@ def choose_engine(name: str, model: LinkedFactorModel, options: RunOptions) -> E
         reason = engine.refusal(model)
         if reason is None:
             why = {
-                "exact": "auto: exact applies (every link component is small enough to "
+                "exact": "auto: exact applies (every linked group is small enough to "
                 "enumerate), so the law is exact on the factor grid",
                 "circuit": "auto: exact does not apply and the statevector fits in memory",
                 "sample": "auto: neither exact nor circuit applies; sampling the cascade",

@@ -14,6 +14,7 @@ from scipy.sparse.csgraph import connected_components
 
 from debtsim.book.records import Book
 from debtsim.model.specification import LinkedFactorModel
+from debtsim.report.formatting import money, percent
 
 __all__ = ["BookOverview", "format_overview", "overview"]
 
@@ -46,10 +47,10 @@ class BookOverview:
         (strongly connected components of the link graph).
     largest_cycle : int
         Obligors in the largest such group; 0 when there is none.
-    link_components : int
+    linked_groups : int
         Groups of two or more obligors joined by links, ignoring direction
         (weakly connected components).
-    largest_component : int
+    largest_linked_group : int
         Obligors in the largest weakly connected component; 1 when the book
         has no links.
     factor_qubits : int
@@ -71,8 +72,8 @@ class BookOverview:
     sectors: int
     cycles: int
     largest_cycle: int
-    link_components: int
-    largest_component: int
+    linked_groups: int
+    largest_linked_group: int
     factor_qubits: int
 
 
@@ -127,19 +128,10 @@ def overview(book: Book) -> BookOverview:
         sectors=len(sectors),
         cycles=int(cyclic.size),
         largest_cycle=int(cyclic.max()) if cyclic.size else 0,
-        link_components=int(linked.size),
-        largest_component=int(weak.max()) if weak.size else 0,
+        linked_groups=int(linked.size),
+        largest_linked_group=int(weak.max()) if weak.size else 0,
         factor_qubits=book.factor_qubits,
     )
-
-
-def _money(value: float, currency: str) -> str:
-    text = f"{value:,.2f}"
-    return f"{text} {currency}" if currency else text
-
-
-def _percent(p: float) -> str:
-    return f"{100 * p:.3g}%"
 
 
 def _plural(count: int, word: str) -> str:
@@ -164,17 +156,17 @@ def format_overview(ov: BookOverview) -> str:
         cycles = f"{ov.cycles:,} (largest: {_plural(ov.largest_cycle, 'obligor')})"
     else:
         cycles = "none"
-    if ov.link_components:
-        groups = f"{ov.link_components:,} (largest: {_plural(ov.largest_component, 'obligor')})"
+    if ov.linked_groups:
+        groups = f"{ov.linked_groups:,} (largest: {_plural(ov.largest_linked_group, 'obligor')})"
     else:
         groups = "none"
     pd_range = (
-        _percent(ov.pd_min)
+        percent(ov.pd_min)
         if ov.pd_min == ov.pd_max
-        else f"{_percent(ov.pd_min)} to {_percent(ov.pd_max)}"
+        else f"{percent(ov.pd_min)} to {percent(ov.pd_max)}"
     )
     el_share = (
-        f" ({_percent(ov.expected_loss_without_contagion / ov.total_exposure)} of exposure)"
+        f" ({percent(ov.expected_loss_without_contagion / ov.total_exposure)} of exposure)"
         if ov.total_exposure > 0
         else ""
     )
@@ -185,11 +177,11 @@ def format_overview(ov: BookOverview) -> str:
         ("Obligors", f"{ov.obligors:,}"),
         ("Sectors", f"{ov.sectors:,}" if ov.sectors else "(none given)"),
         ("Links", f"{ov.links:,}"),
-        ("Total exposure (EAD)", _money(ov.total_exposure, ov.currency)),
-        ("Loss if all default", _money(ov.loss_if_all_default, ov.currency)),
+        ("Total exposure (EAD)", money(ov.total_exposure, ov.currency)),
+        ("Loss if all default", money(ov.loss_if_all_default, ov.currency)),
         (
-            "Expected loss, no contagion",
-            _money(ov.expected_loss_without_contagion, ov.currency) + el_share,
+            "Expected loss without links",
+            money(ov.expected_loss_without_contagion, ov.currency) + el_share,
         ),
         ("PD range", pd_range),
         ("Mean asset correlation", f"{ov.mean_asset_correlation:.3f}"),

@@ -41,6 +41,7 @@ __all__ = [
     "exceedance",
     "legend_outside",
     "loss_distribution_chart",
+    "loss_distribution_figure",
     "new_figure",
     "plain_text",
     "png_base64",
@@ -196,6 +197,16 @@ def loss_distribution_chart(
     plain: LossDistribution | None,
     currency: str,
 ) -> str:
+    """Draw :func:`loss_distribution_figure` as a base64 PNG."""
+    return png_base64(loss_distribution_figure(dist, measures, plain, currency))
+
+
+def loss_distribution_figure(
+    dist: LossDistribution,
+    measures: RiskMeasures,
+    plain: LossDistribution | None,
+    currency: str,
+) -> Figure:
     """Probability of each loss (binned for large supports), with and without links.
 
     Parameters
@@ -211,8 +222,7 @@ def loss_distribution_chart(
 
     Returns
     -------
-    str
-        Base64 PNG.
+    Figure
 
     """
     fig, ax = new_figure()
@@ -264,7 +274,7 @@ def loss_distribution_chart(
     amount_axis(ax)
     ax.legend(frameon=False, loc="lower right", bbox_to_anchor=(1.0, 1.0), ncol=2, fontsize=9)
     ax.set_title("Loss distribution", loc="left", fontsize=11)
-    return png_base64(fig)
+    return fig
 
 
 # ------------------------------------------------------------------ tail chart

@@ -65,8 +65,6 @@ DETAIL_LABELS: Mapping[str, str] = {
     "grid_points": "Loss grid points",
     "linked_groups": "Linked groups",
     "largest_linked_group": "Largest linked group (obligors)",
-    "link_groups": "Linked groups",
-    "largest_link_group": "Largest linked group (obligors)",
     "qubits": "Qubits",
     "shots": "Measurement shots",
     "importance": "Importance sampling used",
@@ -343,7 +341,7 @@ def _charts(analysis: RunView) -> str:
         figure(
             charts.comparison_chart(m, analysis.copula_measures, cur), "risk measures compared",
             "Expected loss, VaR and expected shortfall"
-            + (f" with links (blue) and {esc(WITHOUT_LINKS)} (grey)." if cd is not None
+            + (f" with links (blue) and, in grey, {esc(WITHOUT_LINKS)}." if cd is not None
                else "."),
         ),
     ]
@@ -471,8 +469,8 @@ the debtor: when the debtor defaults, the link passes the default on to the cred
 probability q, and defaults travel further along links, any number of steps. The loss is the sum
 of EAD × LGD over every obligor that finally defaults.</p>
 <p><b>Without links (Gaussian copula).</b> The same book with its links removed: the one-factor
-Gaussian copula. The linked model uses that copula too; the difference between the two columns
-is what the links add.</p>
+Gaussian copula. The linked model is built on that same Gaussian copula; the difference between
+the two columns is what the links add.</p>
 <p><b>Value at risk</b> (VaR) at level a is the smallest loss l with P(loss ≤ l) ≥ a: with
 probability a the year's loss does not exceed it. <b>Expected shortfall</b> (ES) at level a is
 the average loss in the worst 1 − a of outcomes, with the probability at the VaR split so that

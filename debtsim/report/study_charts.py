@@ -42,7 +42,9 @@ __all__ = [
     "loss_distributions_chart",
     "measure_label",
     "measures_by_scenario_chart",
+    "line_figure",
     "movers_chart",
+    "movers_figure",
     "sweep_charts",
 ]
 
@@ -171,6 +173,11 @@ def loss_distributions_chart(
 
 
 def movers_chart(table: pd.DataFrame, names: Sequence[str], top: int) -> bytes:
+    """Draw :func:`movers_figure` as PNG."""
+    return png_bytes(movers_figure(table, names, top))
+
+
+def movers_figure(table: pd.DataFrame, names: Sequence[str], top: int) -> Figure:
     """Dot plot of the PDs with contagion of the obligors that moved most.
 
     The axis is logarithmic when the probabilities drawn span more than
@@ -188,8 +195,7 @@ def movers_chart(table: pd.DataFrame, names: Sequence[str], top: int) -> bytes:
 
     Returns
     -------
-    bytes
-        PNG.
+    Figure
 
     """
     rows = table.head(top)
@@ -228,13 +234,20 @@ def movers_chart(table: pd.DataFrame, names: Sequence[str], top: int) -> bytes:
     ax.xaxis.set_major_formatter(PercentFormatter(1.0, decimals=None))
     legend_outside(ax)
     ax.set_title("Obligors whose default probability moved most", loc="left", fontsize=11)
-    return png_bytes(fig)
+    return fig
 
 
 # ---------------------------------------------------------------- sweep charts
 def _line_chart(
     frame: pd.DataFrame, axis: str, measures: Sequence[str], currency: str, title: str
 ) -> bytes:
+    return png_bytes(line_figure(frame, axis, measures, currency, title))
+
+
+def line_figure(
+    frame: pd.DataFrame, axis: str, measures: Sequence[str], currency: str, title: str
+) -> Figure:
+    """Measures against one swept parameter, legend beside the plot."""
     fig, ax = new_figure(8.0, 4.2)
     frame = frame.sort_values(axis)
     levels = sorted({m.rsplit("_", 1)[-1] for m in measures if m != "expected_loss"})
@@ -251,7 +264,7 @@ def _line_chart(
     amount_axis(ax, "y")
     legend_outside(ax)
     ax.set_title(plain_text(title), loc="left", fontsize=11)
-    return png_bytes(fig)
+    return fig
 
 
 def _heat_map(

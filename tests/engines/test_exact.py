@@ -332,7 +332,7 @@ def test_rounded_grid_with_links_close_to_exact_support() -> None:
     exact = ExactEngine().run(model)
     assert exact.settings["loss_support"] == "atoms"
     rounded = ExactEngine(exact_support_limit=1, grid_points=8192).run(model)
-    assert rounded.settings["link_groups"] == 3
+    assert rounded.settings["linked_groups"] == 3
     error = rounded.diagnostics["discretisation_error"]
     assert rounded.mean == pytest.approx(exact.mean, rel=1e-9)
     np.testing.assert_allclose(rounded.default_probability, exact.default_probability, atol=1e-12)
@@ -358,7 +358,7 @@ def test_expected_loss_with_links_uses_final_default_probabilities() -> None:
 
 # ---------------------------------------------------------------- refusal, hooks, grid
 def test_refuses_large_link_group_naming_sampler() -> None:
-    """A link group above the limit is refused with a message that names the sample engine."""
+    """A linked group above the limit is refused with a message that names the sample engine."""
     obligors = [(100.0, 0.02, 0.45, 0.2)] * 20
     links = [(i + 1, i, 0.3) for i in range(19)]
     model = make_model((obligors, links))

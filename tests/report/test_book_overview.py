@@ -42,7 +42,7 @@ def test_small_book_figures() -> None:
     assert (ov.pd_min, ov.pd_max) == (0.01, 0.03)
     assert ov.mean_asset_correlation == pytest.approx(0.1625)
     assert (ov.cycles, ov.largest_cycle) == (1, 2)
-    assert (ov.link_components, ov.largest_component) == (1, 3)
+    assert (ov.linked_groups, ov.largest_linked_group) == (1, 3)
     assert (ov.name, ov.currency, ov.factor_qubits) == (
         "Quillmoor Valley - farm supply desk",
         "EUR",
@@ -55,7 +55,7 @@ def test_book_without_links() -> None:
     book = Book("plain", "", (firm(0), firm(1, sector="x"), firm(2, sector="x")))
     ov = overview(book)
     assert (ov.links, ov.cycles, ov.largest_cycle) == (0, 0, 0)
-    assert (ov.link_components, ov.largest_component) == (0, 1)
+    assert (ov.linked_groups, ov.largest_linked_group) == (0, 1)
     assert ov.sectors == 1
     text = format_overview(ov)
     assert "Lending cycles               none" in text
@@ -74,10 +74,10 @@ def test_format_is_aligned_plain_text() -> None:
     assert len(value_columns) == 1
     assert "[" not in text  # no rich markup
     assert "Obligors                     5" in text
-    assert "Total exposure (EAD)         3,400,000.00 EUR" in text
+    assert "Total exposure (EAD)         3,400,000 EUR" in text
     assert "Lending cycles               1 (largest: 2 obligors)" in text
     assert "Linked groups                1 (largest: 4 obligors)" in text
-    assert "PD range                     1% to 3%" in text
+    assert "PD range                     1.00% to 3.00%" in text
     assert "Factor resolution            5 qubits (32 nodes)" in text
 
 
@@ -113,5 +113,5 @@ def test_graph_facts_agree_with_model(book: Book) -> None:
     groups = sorted(c.size for c in model.components)
     assert ov.cycles == len(cycles)
     assert ov.largest_cycle == (cycles[-1] if cycles else 0)
-    assert ov.link_components == sum(1 for g in groups if g > 1)
-    assert ov.largest_component == groups[-1]
+    assert ov.linked_groups == sum(1 for g in groups if g > 1)
+    assert ov.largest_linked_group == groups[-1]

@@ -6,7 +6,7 @@ For each factor node the engine computes
 
 * the loss law of the obligors without links, through their probability
   generating function on a loss grid (see :mod:`debtsim.engines.exact.loss_grid`),
-* the exact joint law of final defaults of every link group, by the chain
+* the exact joint law of final defaults of every linked group, by the chain
   rule over its strongly connected parts in debtor-to-creditor order, each
   part's law from :func:`debtsim.model.linked_group_law.group_law`,
 
@@ -86,7 +86,7 @@ _UNIT_TOLERANCE = 1e-9
 
 @dataclass(frozen=True)
 class _Part:
-    """One strongly connected part of a link group, in chain order."""
+    """One strongly connected part of a linked group, in chain order."""
 
     members: IntArray  # obligor indices
     external: tuple[tuple[int, int, float], ...]  # (debtor bit, member position, q)
@@ -95,7 +95,7 @@ class _Part:
 
 @dataclass(frozen=True)
 class _Group:
-    """A link group (weakly connected component with links), ready to enumerate."""
+    """A linked group (weakly connected component with links), ready to enumerate."""
 
     members: IntArray  # obligor indices in bit order
     parts: tuple[_Part, ...]
@@ -119,7 +119,7 @@ class ExactEngine(Engine):
         fewer than ``grid_points / 1024`` obligors get about 1024 points per
         obligor).
     max_component_size : int
-        Largest link group enumerated exactly (``2**size`` joint states).
+        Largest linked group enumerated exactly (``2**size`` joint states).
     exact_support_limit : int
         Books without a common loss unit keep exact loss values while the
         number of distinct possible losses stays below this.
@@ -159,7 +159,7 @@ class ExactEngine(Engine):
 
     # ------------------------------------------------------------ refusal
     def refusal(self, model: LinkedFactorModel) -> str | None:
-        """Refuse books with a link group too large to enumerate."""
+        """Refuse books with a linked group too large to enumerate."""
         if model.n_links == 0:
             return None
         largest = max(model.components, key=len)
@@ -244,7 +244,7 @@ class ExactEngine(Engine):
         if reason is not None:
             raise EngineRefusedError(reason)
         grid = self.factor_grid if self.factor_grid is not None else self.default_factor_grid(model)
-        groups = _link_groups(model)
+        groups = _linked_groups(model)
         in_group = np.zeros(model.n_obligors, dtype=bool)
         for g in groups:
             in_group[g.members] = True
@@ -271,8 +271,8 @@ class ExactEngine(Engine):
             "loss_support": plan.mode,
             "grid_unit": unit,
             "grid_points": plan.top + 1 if plan.mode != "atoms" else None,
-            "link_groups": len(groups),
-            "largest_link_group": max((g.members.size for g in groups), default=1),
+            "linked_groups": len(groups),
+            "largest_linked_group": max((g.members.size for g in groups), default=1),
         }
         return LossDistribution(
             losses=losses,
@@ -286,9 +286,9 @@ class ExactEngine(Engine):
         )
 
 
-# ====================================================================== link groups
-def _link_groups(model: LinkedFactorModel) -> list[_Group]:
-    """Link groups with their chain order of strongly connected parts."""
+# ====================================================================== linked groups
+def _linked_groups(model: LinkedFactorModel) -> list[_Group]:
+    """Linked groups with their chain order of strongly connected parts."""
     if model.n_links == 0:
         return []
     labels = model.component_labels
@@ -626,7 +626,7 @@ def _run_grid(
 
 @dataclass
 class _GroupLaws:
-    """Loss laws of the link groups at every factor node (grid units)."""
+    """Loss laws of the linked groups at every factor node (grid units)."""
 
     positions: list[IntArray]  # distinct grid losses of each group
     merged: list[FloatArray]  # (nodes, len(positions)) probabilities
@@ -647,7 +647,7 @@ def _all_group_laws(
     grid: FactorGrid,
     default_probability: FloatArray,
 ) -> _GroupLaws:
-    """Enumerate every link group at every node; add its members' final PDs."""
+    """Enumerate every linked group at every node; add its members' final PDs."""
     n_nodes = len(grid)
     out = _GroupLaws(
         positions=[],

@@ -3,7 +3,7 @@
 Two representations are used.
 
 *Grid.*  Every loss is an integer number ``k`` of grid units.  Given the
-factor, the obligors outside link groups are independent Bernoulli losses,
+factor, the obligors outside linked groups are independent Bernoulli losses,
 so the probability generating function of their total is
 ``G(x) = prod_i (1 - p_i + p_i x^k_i)``.  It is evaluated on the ``W``-th
 roots of unity (so the law comes out modulo ``W``, i.e. on a window of ``W``
@@ -20,7 +20,7 @@ one real FFT pair, however wide the window; ``R_i`` is the number of terms
 obligor *i* needs for the requested accuracy (about 10 for a 1% PD).
 Obligors too close to ``p = 1/2`` for the series to converge quickly are
 summed exactly instead (binomial-type laws per distinct loss, see
-:func:`bernoulli_sums`); link groups enter as their exact joint loss laws.
+:func:`bernoulli_sums`); linked groups enter as their exact joint loss laws.
 Both are convolved together (:func:`product_law`), folded onto the window
 and multiplied in on the same roots of unity.  This is the recursion-free
 form of the one-factor loss algorithm of Andersen, Sidenius & Basu (Risk,
@@ -317,7 +317,7 @@ def grid_law(
     count : ndarray, shape (n,), optional
         Number of identical obligors in each class (default 1).
     extra : (offset, probabilities), optional
-        Law of an independent addend (the link groups): value ``offset + t``
+        Law of an independent addend (the linked groups): value ``offset + t``
         with probability ``probabilities[t]``.
     tolerance : float
         Bound on the series truncation error of the log-PGF.

@@ -13,8 +13,8 @@ import yaml
 
 HERE = Path(__file__).parent
 SECTORS = ["agriculture", "retail", "construction", "energy", "manufacturing", "shipping"]
-SYLLABLES = ["bram", "cor", "dell", "fen", "gar", "holt", "ivy", "jas", "kel", "lun", "mor",
-             "nett", "orm", "pax", "quill", "ros", "sal", "tarn", "ulm", "vey", "wick", "yar"]
+SYLLABLES = ["brac", "cwen", "dorl", "evro", "fenk", "gral", "hobb", "isk", "jund", "kev", "lorr",
+             "mirk", "nask", "orv", "plon", "quar", "rask", "stel", "tuv", "ulk", "vadd", "wess"]
 KINDS = ["Farms", "Mills", "Haulage", "Builders", "Foods", "Energy", "Supplies", "Works",
          "Traders", "Dairy", "Timber", "Metals"]
 
@@ -80,7 +80,7 @@ def grain_coop() -> None:
     ]
     sizes = [6, 5, 5, 4, 4, 4, 3, 3, 3, 3, 2, 2, 2, 2] + [1] * 12
     links = clustered_links(rng, ids, sizes, cycle_share=0.6)
-    book = {"book": "Upland Grain Cooperative Bank - members' book", "currency": "EUR",
+    book = {"book": "Corvask Valley Grain Cooperative Bank - members' book", "currency": "EUR",
             "obligors": obligors, "links": links, "model": {"factor_qubits": 5}}
     header = "# Demo book (invented firms and figures): mid-size, with lending cycles.\n"
     (HERE / "grain_coop.yaml").write_text(header + yaml.safe_dump(book, sort_keys=False))
@@ -111,7 +111,7 @@ def regional_bank() -> None:
             w.writerow([lk["creditor"], lk["debtor"], lk["contagion"], f"{lk['amount']:.0f}"])
     (HERE / "regional_bank.yaml").write_text(
         "# Demo book (invented firms and figures): 3,000 business loans read from CSV.\n"
-        "book: Riverside Savings Bank - business lending\n"
+        "book: Quenmoor Savings Bank - business lending\n"
         "currency: GBP\n"
         "obligors: regional_bank/obligors.csv\n"
         "links: regional_bank/links.csv\n"

@@ -123,8 +123,8 @@ def relative_change(value: float | None, base: float | None) -> str:
         return DASH
     if float(base) <= 0:
         return DASH
-    rel = float(value) / float(base) - 1.0
-    return f"{100 * rel:+.1f}%"
+    points = round(100 * (float(value) / float(base) - 1.0), 1)
+    return "0.0%" if points == 0 else f"{points:+.1f}%"
 
 
 def level_label(level: float | str) -> str:

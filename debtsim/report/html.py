@@ -129,7 +129,7 @@ def _standard_error(
                 return None
             value = value.get(key, value.get(level_key(float(key))))
         try:
-            f = float(value)  # type: ignore[arg-type]
+            f = float(value)
         except (TypeError, ValueError):
             return None
         return f if math.isfinite(f) else None
@@ -188,7 +188,7 @@ def accuracy_line(dist: LossDistribution, currency: str = "") -> str:
 # ---------------------------------------------------------------- sections
 def _law_text(dist: LossDistribution) -> str:
     if dist.samples is None:
-        text = "exact (no sampling)"
+        text = "no sampling"
         if dist.seed is not None:
             text += f", seed {dist.seed}"
     else:
@@ -207,10 +207,10 @@ def _facts(analysis: RunView, created: _dt.datetime) -> str:
                      f"{esc(money(book.total_exposure, book.currency))}"),
         ("Links", f"{len(book.links):,}" if book.links else "none"),
         ("Engine", f"<b>{esc(analysis.engine)}</b> — {esc(analysis.engine_reason)}"),
-        ("Loss distribution", esc(_law_text(dist))),
+        ("Loss distribution", f"{esc(dist.engine)} engine, {esc(_law_text(dist))}"),
     ]
     if cd is not None:
-        rows.append(("Without links", f"{esc(cd.engine)}: {esc(_law_text(cd))}"))
+        rows.append(("Without links", f"{esc(cd.engine)} engine, {esc(_law_text(cd))}"))
     else:
         rows.append(("Without links", "not computed"))
     rows.append(("Confidence levels", ", ".join(level_label(k) for k in analysis.measures.var)))
@@ -228,10 +228,11 @@ def _kpis(analysis: RunView) -> str:
     effect = contagion_effect(m, cm)
     top = max(m.var, key=float) if m.var else None
     el_diff = effect["expected_loss_from_contagion"]
-    cards: list[tuple[str, float, float | None, float | None]] = [
+    diag = analysis.loss_distribution.diagnostics
+    cards: list[tuple[str, float, float | None, float | None, float | None]] = [
         ("Expected loss", m.expected_loss,
          float(el_diff) if isinstance(el_diff, (int, float)) else None,
-         cm.expected_loss if cm else None),
+         cm.expected_loss if cm else None, _standard_error(diag, "expected_loss", None)),
     ]
     if top is not None:
         for label, name, values, plain in (
@@ -244,17 +245,20 @@ def _kpis(analysis: RunView) -> str:
             diffs = effect[f"{name}_from_contagion"]
             found = diffs.get(top) if isinstance(diffs, Mapping) else None
             diff = float(found) if isinstance(found, (int, float)) else None
-            cards.append((label, values[top], diff, plain.get(top) if plain else None))
+            cards.append((label, values[top], diff, plain.get(top) if plain else None,
+                          _standard_error(diag, name, top)))
     html = []
-    for label, value, diff, plain_value in cards:
+    for label, value, diff, plain_value, se in cards:
         d = ""
         if diff is not None:
             rel = relative_change(value, plain_value)
             d = (f'<div class="d">{esc(signed_money(float(diff), cur))} from contagion'
                  + (f" ({rel})" if rel != "–" else "") + "</div>")
         unit = f'<span class="cur">{esc(cur)}</span>' if cur else ""
+        error = (f'<div class="se">± {esc(money(se, cur))} (one standard error)</div>'
+                 if se is not None else "")
         html.append(f'<div class="kpi"><div class="l">{esc(label)}</div>'
-                    f'<div class="v">{money(value)}{unit}</div>{d}</div>')
+                    f'<div class="v">{money(value)}{unit}</div>{error}{d}</div>')
     return f'<div class="kpis">{"".join(html)}</div>'
 
 

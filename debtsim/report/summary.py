@@ -98,8 +98,8 @@ def summary_dict(analysis: RunView) -> dict[str, Any]:
         "contagion": {
             **effect,
             "most_contagious_links": links,
-            "link_indicator": "contagion * debtor final PD * (1 - creditor PD) * creditor EAD "
-            "* creditor LGD (first-order expected loss carried by the link)",
+            "link_indicator": "contagion * debtor PD with contagion * (1 - creditor PD) "
+            "* creditor EAD * creditor LGD (first-order expected loss carried by the link)",
         },
         "book_source": book.source,
         "caution": CAUTION,

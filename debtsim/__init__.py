@@ -12,7 +12,7 @@ Use from Python::
     result.write("reports/harbour_small")
 
 Every error raised on purpose is a :class:`DebtsimError`.  Results are model
-estimates, not investment or regulatory advice.
+estimates: see :data:`CAUTION`, the one caution text every report carries.
 
 The names are loaded on first use, so ``import debtsim`` stays quick.
 """
@@ -58,6 +58,7 @@ _EXPORTS: dict[str, str] = {
     "DEFAULT_LEVELS": "debtsim.options",
     "DEFAULT_SAMPLES": "debtsim.options",
     "DEFAULT_SEED": "debtsim.options",
+    "CAUTION": "debtsim.report.text",
     # errors and warnings
     "DebtsimError": "debtsim.errors",
     "BookError": "debtsim.errors",
@@ -71,6 +72,7 @@ _EXPORTS: dict[str, str] = {
 
 __all__ = [
     "__version__",
+    "CAUTION",
     "Book",
     "BookError",
     "CircuitReport",
@@ -155,6 +157,7 @@ if TYPE_CHECKING:  # the names as static checkers see them
         ENGINE_NAMES,
         RunOptions,
     )
+    from debtsim.report.text import CAUTION
     from debtsim.risk import RiskMeasures
     from debtsim.runner import RunResult
     from debtsim.studies.scenarios import Scenario

@@ -17,8 +17,7 @@ from typing import TYPE_CHECKING, Annotated
 
 import typer
 
-from debtsim import BookError, DebtsimError, OptionError
-from debtsim.report.text import CAUTION
+from debtsim import CAUTION, BookError, DebtsimError, OptionError
 
 if TYPE_CHECKING:
     from debtsim import RunResult

@@ -95,7 +95,7 @@ def percent(p: float | None) -> str:
     v = float(p)
     if v == 0:
         return "0%"
-    if v == 1:
+    if abs(v - 1) <= NOISE:
         return "100%"
     if abs(v) >= 0.001:
         return f"{100 * v:.2f}%"

@@ -231,7 +231,10 @@ def movers_figure(table: pd.DataFrame, names: Sequence[str], top: int) -> Figure
     else:
         ax.set_xlim(left=0)
         ax.set_xlabel(PD_WITH_CONTAGION)
-    ax.xaxis.set_major_formatter(PercentFormatter(1.0, decimals=None))
+    if log:
+        ax.xaxis.set_major_formatter(FuncFormatter(lambda v, _pos: f"{100 * v:.3g}%"))
+    else:
+        ax.xaxis.set_major_formatter(PercentFormatter(1.0, decimals=None))
     legend_outside(ax)
     ax.set_title("Obligors whose default probability moved most", loc="left", fontsize=11)
     return fig

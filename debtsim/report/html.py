@@ -482,9 +482,9 @@ exactly 1 − a is averaged (Acerbi &amp; Tasche, 2002); ES is at least VaR.
 <b>Economic capital</b> here is VaR − EL.</p>
 <p><b>Changes.</b> A change of a probability is written in percentage points (pp): 1.20% to
 2.15% is +0.95 pp. A change of an amount is written in percent of the amount it starts from.</p>
-<p><b>Precision.</b> The line under the caution says how exact the figures are; the engine's
-settings and error estimates are in the <a href="#appendix">appendix</a>. Sampled figures carry
-sampling error, shown as ± one standard error where the engine reports it.</p>
+<p><b>Precision.</b> The “Numerical accuracy” line at the top says how exact the figures are;
+the engine's settings and error estimates are in the <a href="#appendix">appendix</a>. Sampled
+figures carry sampling error, shown as ± one standard error where the engine reports it.</p>
 <p class="note">{esc(PD_WITH_CONTAGION)}: the probability that the obligor defaults on its own
 or is dragged in along links.</p>"""
 

@@ -1,7 +1,7 @@
 r"""Risk contributions on the ``exact`` engine, exact on its factor nodes.
 
-Given the factor ``z``, obligors outside link groups are independent
-Bernoulli losses and each link group is independent of the rest.  The
+Given the factor ``z``, obligors outside linked groups are independent
+Bernoulli losses and each linked group is independent of the rest.  The
 contributions need, per node, ``E[D_i f(L) | z]`` for ``f = 1{L <= v}`` and
 ``f = 1{L = v}`` at each level's VaR ``v``, which in turn needs the law of
 the rest of the book ``L - L_i``.
@@ -32,7 +32,7 @@ mode) or by convolving the other items (exact-atoms mode); then
 
 *Own default versus contagion.*  The own-default part ``E[O_i f(L)]`` is
 ``p_i`` times the same sum over the group law with ``i``'s own default
-forced (seed probability 1); outside link groups the two coincide.
+forced (seed probability 1); outside linked groups the two coincide.
 
 *VaR on a continuous stretch.*  On the loss grid the law is discrete, so VaR
 is an atom of width one grid unit; ``E[L_i | L = v]`` on that atom is a
@@ -67,7 +67,7 @@ from debtsim.engines.exact.engine import (
     _choose_losses,
     _Group,
     _group_state_law,
-    _link_groups,
+    _linked_groups,
     _LossPlan,
     _state_bits,
 )
@@ -219,7 +219,7 @@ def exact_moments(
     grid = engine.factor_grid if engine.factor_grid is not None else engine.default_factor_grid(
         model
     )
-    groups = _link_groups(model)
+    groups = _linked_groups(model)
     in_group = np.zeros(model.n_obligors, dtype=bool)
     for g in groups:
         in_group[g.members] = True
@@ -289,7 +289,7 @@ def exact_moments(
     )
 
 
-# ====================================================================== link groups
+# ====================================================================== linked groups
 def _forced_laws(group: _Group, own: FloatArray) -> list[FloatArray]:
     """Group state laws with each member's own default forced, times its own PD."""
     out = []

@@ -68,6 +68,7 @@ from debtsim.model.factor_grid import FactorGrid, adaptive_grid
 from debtsim.model.linked_group_law import MAX_GROUP_SIZE, group_law
 from debtsim.model.specification import LinkedFactorModel, conditional_default_probability
 
+
 __all__ = ["ExactEngine"]
 
 IntArray = NDArray[np.int64]
@@ -134,6 +135,8 @@ class ExactEngine(Engine):
         self,
         *,
         factor_grid: FactorGrid | None = None,
+        sector_grid: FactorGrid | None = None,
+        mixing_grid: FactorGrid | None = None,
         factor_resolution: float = 1.5,
         factor_order: int = 8,
         grid_points: int = 2**17,
@@ -150,6 +153,8 @@ class ExactEngine(Engine):
         if node_batch < 1:
             raise ValueError(f"node_batch must be >= 1, got {node_batch}")
         self.factor_grid = factor_grid
+        self.sector_grid = sector_grid
+        self.mixing_grid = mixing_grid
         self.factor_resolution = float(factor_resolution)
         self.factor_order = int(factor_order)
         self.grid_points = int(grid_points)
@@ -160,6 +165,12 @@ class ExactEngine(Engine):
     # ------------------------------------------------------------ refusal
     def refusal(self, model: LinkedFactorModel) -> str | None:
         """Refuse books with a linked group too large to enumerate."""
+        if model.dependence is not None:
+            from debtsim.engines.exact.sector_law import sector_refusal
+
+            reason = sector_refusal(model)
+            if reason is not None:
+                return reason
         if model.n_links == 0:
             return None
         largest = max(model.components, key=len)
@@ -243,6 +254,8 @@ class ExactEngine(Engine):
         reason = self.refusal(model)
         if reason is not None:
             raise EngineRefusedError(reason)
+        if model.dependence is not None:
+            return self._run_sectors(model, progress)
         grid = self.factor_grid if self.factor_grid is not None else self.default_factor_grid(model)
         groups = _linked_groups(model)
         in_group = np.zeros(model.n_obligors, dtype=bool)
@@ -283,6 +296,49 @@ class ExactEngine(Engine):
             seed=None,
             settings=settings,
             diagnostics=diagnostics,
+        )
+
+    def _run_sectors(
+        self, model: LinkedFactorModel, progress: ProgressHook | None
+    ) -> LossDistribution:
+        """Sector loadings and/or Student-t: see :mod:`debtsim.engines.exact.sector_law`."""
+        from debtsim.engines.exact.sector_law import sector_law
+
+        groups = _linked_groups(model)
+        in_group = np.zeros(model.n_obligors, dtype=bool)
+        for g in groups:
+            in_group[g.members] = True
+        plan = _choose_losses(
+            np.asarray(model.loss_given_default, dtype=float),
+            model.pd,
+            model.asset_correlation,
+            np.flatnonzero(~in_group),
+            groups,
+            self.grid_points,
+            self.exact_support_limit,
+        )
+        result = sector_law(
+            model,
+            groups=groups,
+            plan=plan,
+            group_state_law=_group_state_law,
+            state_bits=_state_bits,
+            factor_grid=self.factor_grid,
+            sector_grid=self.sector_grid,
+            mixing_grid=self.mixing_grid,
+            resolution=self.factor_resolution,
+            order=self.factor_order,
+            progress=progress,
+        )
+        return LossDistribution(
+            losses=result.losses,
+            probabilities=result.probabilities,
+            default_probability=result.default_probability,
+            engine=self.name,
+            samples=None,
+            seed=None,
+            settings=result.settings,
+            diagnostics=result.diagnostics,
         )
 
 

@@ -299,3 +299,15 @@ def test_custom_mixing_grid_is_used() -> None:
     # with W = nu the threshold is t^-1(PD): PDs shift from the Gaussian ones
     model = LinkedFactorModel.from_book(book)
     assert dist.default_probability[3] != pytest.approx(float(model.pd[3]), rel=1e-3)
+
+
+def test_links_joining_many_sectors_are_refused_naming_sample() -> None:
+    """Student-t with a link group across three moving sectors exceeds the tensor limit."""
+    book = with_sectors(
+        sector_book(6, "abc", [(0, 1, 0.5), (1, 2, 0.5)], seed=2),
+        {"a": 0.5, "b": 0.6, "c": 0.7},
+        family="student_t",
+        degrees_of_freedom=5.0,
+    )
+    reason = ExactEngine().refusal(LinkedFactorModel.from_book(book))
+    assert reason is not None and "--engine sample" in reason and "3 sectors" in reason

@@ -90,6 +90,10 @@ IntArray = NDArray[np.int64]
 DEFAULT_SECTOR_NODES = 16
 #: Largest number of inner nodes (outer nodes times sector-factor tuples) of one block.
 MAX_BLOCK_INNER_NODES = 400_000
+#: Largest (sector-node tuples x mixing nodes) of a block of linked sectors.
+MAX_TENSOR_TUPLES = 30_000
+#: Nodes of the default Student-t mixing rule (``chi_square_grid`` defaults).
+DEFAULT_MIXING_NODES = 96
 #: Factor range of the default grids; the normal mass outside is ~2e-17.
 FACTOR_LIMIT = 8.5
 _SHARP_REGION_TAIL = 1e-6
@@ -352,8 +356,14 @@ def _blocks(model: LinkedFactorModel, groups: Sequence[Any]) -> list[_Block]:
     return blocks
 
 
-def sector_refusal(model: LinkedFactorModel, outer_nodes: int = 200) -> str | None:
-    """Why the exact engine cannot run this dependence structure, or None."""
+def sector_refusal(model: LinkedFactorModel, groups: Sequence[Any]) -> str | None:
+    """Why the exact engine cannot run this dependence structure, or None.
+
+    Refused: the matrix form (no error-controlled semi-analytic method here),
+    and link groups joining so many sectors that the tensor rule over their
+    factors (``DEFAULT_SECTOR_NODES ** sectors`` per global node, times the
+    Student-t mixing nodes) exceeds :data:`MAX_TENSOR_TUPLES`.
+    """
     structure = model.dependence
     if structure is None:
         return None
@@ -363,6 +373,20 @@ def sector_refusal(model: LinkedFactorModel, outer_nodes: int = 200) -> str | No
             "a general sector correlation matrix (model.sector_correlation) needs "
             "--engine sample"
         )
+    loadings = _loadings(structure)
+    mixing = DEFAULT_MIXING_NODES if structure.student_t else 1
+    for block in _blocks(model, groups):
+        moving = sum(1 for s in block.sectors if 1.0 - loadings[s] ** 2 > _SIGMA_ZERO**2)
+        if moving < 2:
+            continue
+        tuples = DEFAULT_SECTOR_NODES**moving * mixing
+        if tuples > MAX_TENSOR_TUPLES:
+            names = ", ".join(structure.sector_names[s] for s in block.sectors[:4])
+            return (
+                f"link groups join {len(block.sectors)} sectors ({names}); the exact engine "
+                f"would condition on their factors jointly on {tuples:,} node tuples per "
+                f"global node, more than its limit of {MAX_TENSOR_TUPLES:,}; use --engine sample"
+            )
     return None
 
 

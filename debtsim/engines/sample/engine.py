@@ -87,7 +87,6 @@ from debtsim.engines.sample.scenario_draws import (
     exact_log_normaliser,
     thresholds,
 )
-from debtsim.errors import EngineRefusedError
 from debtsim.model.specification import LinkedFactorModel
 from debtsim.risk import level_key, value_at_risk, weighted_sample_measures
 
@@ -524,15 +523,6 @@ class SampleEngine(Engine):
         return sampler.run(self.samples, root, progress), plan, seed_value
 
     # ------------------------------------------------------------------ public
-    def refusal(self, model: LinkedFactorModel) -> str | None:
-        """Why the sampler cannot run ``model``, or None when it can."""
-        if model.dependence is not None:
-            return (
-                f"the sample engine does not run {model.dependence.describe()} yet; "
-                "use the 'exact' engine"
-            )
-        return None
-
     def run(
         self, model: LinkedFactorModel, *, progress: ProgressHook | None = None
     ) -> LossDistribution:
@@ -559,11 +549,51 @@ class SampleEngine(Engine):
             obligor; ``effective_sample_size``; ``batches``).
 
         """
-        reason = self.refusal(model)
-        if reason is not None:
-            raise EngineRefusedError(reason)
+        if model.dependence is not None:
+            return self._run_sectors(model, progress)
         scen, plan, seed_value = self._draw(model, progress)
         return self._law(model, scen, plan, seed_value)
+
+    def _run_sectors(
+        self, model: LinkedFactorModel, progress: ProgressHook | None
+    ) -> LossDistribution:
+        """Sector factors / Student-t: see :mod:`debtsim.engines.sample.sector_draws`."""
+        from debtsim.engines.sample.sector_draws import SectorSampler, plan_sector_tilts
+
+        root, seed_value = self._seed_sequence()
+        proposal = None
+        if self._uses_importance():
+            plan_seed = np.random.SeedSequence(root.entropy, spawn_key=(*root.spawn_key, 2))
+            proposal = plan_sector_tilts(model, self.levels, plan_seed)
+        scen = SectorSampler(model, proposal).run(self.samples, root, progress)
+        law = self._law(model, scen, None, seed_value)
+        assert model.dependence is not None
+        settings = dict(law.settings)
+        settings.pop("factor_shift", None)
+        settings["importance"] = proposal is not None
+        settings["dependence"] = model.dependence.describe()
+        settings["sector_method"] = (
+            "Monte Carlo of independent factors X, sector factors Y = M X"
+            + (", W ~ chi^2_nu" if model.dependence.student_t else "")
+            + ("; mean-shift importance sampling (Glasserman & Li 2005) in a defensive mixture"
+               if proposal is not None else "")
+        )
+        if proposal is not None:
+            settings["plain_share"] = proposal.plain_share
+            settings["tilts"] = {
+                level_key(t.level): {
+                    "share": proposal.share,
+                    "factor_shift": [float(v) for v in t.shift],
+                    "mixing_scale": t.w_scale,
+                    "target_loss": t.target_loss,
+                }
+                for t in proposal.tilts
+            }
+        diagnostics = dict(law.diagnostics)
+        diagnostics["method"] = settings["sector_method"]
+        if proposal is not None:
+            diagnostics["max_weight"] = float(scen.weights.max())
+        return dataclasses.replace(law, settings=settings, diagnostics=diagnostics)
 
     def _law(
         self,

@@ -68,7 +68,6 @@ from debtsim.model.factor_grid import FactorGrid, adaptive_grid
 from debtsim.model.linked_group_law import MAX_GROUP_SIZE, group_law
 from debtsim.model.specification import LinkedFactorModel, conditional_default_probability
 
-
 __all__ = ["ExactEngine"]
 
 IntArray = NDArray[np.int64]

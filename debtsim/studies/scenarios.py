@@ -48,6 +48,7 @@ from debtsim.book.yaml_reader import (
     suggest,
 )
 from debtsim.errors import BookError
+from debtsim.studies.dependence_stress import stress_dependence
 
 __all__ = [
     "BASE_NAME",
@@ -76,10 +77,17 @@ GLOBAL_FIELDS: tuple[str, ...] = (
     "asset_correlation_shift",
     "lgd_shift",
     "contagion_scale",
+    "sector_loading_shift",
+    "degrees_of_freedom",
 )
 
 #: Fields allowed in a sector's change.
-SECTOR_FIELDS: tuple[str, ...] = ("pd_scale", "asset_correlation_shift", "lgd_shift")
+SECTOR_FIELDS: tuple[str, ...] = (
+    "pd_scale",
+    "asset_correlation_shift",
+    "lgd_shift",
+    "sector_loading_shift",
+)
 
 #: Value of each numeric field that changes nothing.
 NEUTRAL: Mapping[str, float] = {
@@ -87,6 +95,8 @@ NEUTRAL: Mapping[str, float] = {
     "asset_correlation_shift": 0.0,
     "lgd_shift": 0.0,
     "contagion_scale": 1.0,
+    "sector_loading_shift": 0.0,
+    "degrees_of_freedom": 0.0,  # 0: keep the book's dependence family
 }
 
 _SCENARIO_KEYS = ("name", *GLOBAL_FIELDS, "sectors", "defaulted")
@@ -125,6 +135,8 @@ def check_field(name: str, value: object) -> str | None:
         return f"must be greater than 0, got {value!r}"
     if name == "contagion_scale" and v < 0.0:
         return f"must be at least 0, got {value!r}"
+    if name == "degrees_of_freedom" and v != 0.0 and not v > 2.0:
+        return f"must be greater than 2 (or 0 to keep the book's family), got {value!r}"
     if name.endswith("_shift") and not -1.0 <= v <= 1.0:
         return f"must be between -1 and 1, got {value!r}"
     return None
@@ -142,12 +154,15 @@ class SectorShock:
         Further shift of R, in [-1, 1].
     lgd_shift : float
         Further shift of LGD, in [-1, 1].
+    sector_loading_shift : float
+        Further shift of this sector's loading, in [-1, 1].
 
     """
 
     pd_scale: float = 1.0
     asset_correlation_shift: float = 0.0
     lgd_shift: float = 0.0
+    sector_loading_shift: float = 0.0
 
     def __post_init__(self) -> None:
         for name in SECTOR_FIELDS:
@@ -173,6 +188,11 @@ class Scenario:
         Added to every LGD, result clipped to ``[0, 1]``.
     contagion_scale : float
         Multiplier of every link's contagion (>= 0); results capped at 1.
+    sector_loading_shift : float
+        Added to every sector loading (clipped to [0, 1]); see
+        :mod:`debtsim.studies.dependence_stress`.
+    degrees_of_freedom : float
+        Student-t dependence with this ``nu`` (> 2); 0 keeps the book's family.
     sectors : tuple of (str, SectorShock)
         Per-sector changes on top of the global ones, in file order (a mapping
         is accepted and converted).
@@ -188,6 +208,8 @@ class Scenario:
     asset_correlation_shift: float = 0.0
     lgd_shift: float = 0.0
     contagion_scale: float = 1.0
+    sector_loading_shift: float = 0.0
+    degrees_of_freedom: float = 0.0
     sectors: tuple[tuple[str, SectorShock], ...] = ()
     defaulted: tuple[str, ...] = ()
     line: int | None = field(default=None, compare=False)
@@ -224,7 +246,7 @@ class Scenario:
 
     @property
     def global_values(self) -> dict[str, float]:
-        """The four global numeric fields by name."""
+        """The global numeric fields by name."""
         return {name: getattr(self, name) for name in GLOBAL_FIELDS}
 
     def describe(self) -> str:
@@ -275,6 +297,9 @@ def apply_scenario(book: Book, scenario: Scenario) -> Book:
     ``R' = clip(R + shift + S.shift, 0, 0.999)``; ``LGD' = clip(LGD + shift +
     S.shift, 0, 1)``.  Each link: ``q' = min(1, q * contagion_scale)``.  A
     neutral total change (scale 1, shift 0) keeps the book's value as is.
+    Sector loadings and the dependence family change as
+    :func:`debtsim.studies.dependence_stress.stress_dependence` says; it
+    raises ValueError when the change is impossible (that scenario fails).
 
     """
     shocks = scenario.sector_shocks
@@ -303,8 +328,18 @@ def apply_scenario(book: Book, scenario: Scenario) -> Book:
             replace(lk, contagion=min(1.0, lk.contagion * scenario.contagion_scale))
             for lk in book.links
         )
+    dependence = stress_dependence(
+        book.dependence,
+        scenario.sector_loading_shift,
+        {name: shock.sector_loading_shift for name, shock in scenario.sectors},
+        scenario.degrees_of_freedom,
+    )
     return replace(
-        book, name=f"{book.name} [{scenario.name}]", obligors=tuple(obligors), links=links
+        book,
+        name=f"{book.name} [{scenario.name}]",
+        obligors=tuple(obligors),
+        links=links,
+        dependence=dependence,
     )
 
 

@@ -334,7 +334,8 @@ def partial_dir(out_dir: Path | str) -> Path:
 def book_fingerprint(book: Book, options: RunOptions) -> str:
     """Hash of what a point's result depends on besides its values.
 
-    The obligors' and links' numbers and ids, the factor resolution, and the
+    The obligors' and links' numbers and ids, the factor resolution, the
+    dependence settings (sector factors, Student-t) when the book has any, and the
     engine options (engine, samples, seed, shots, levels).
     """
     data = {
@@ -357,6 +358,8 @@ def book_fingerprint(book: Book, options: RunOptions) -> str:
         "shots": options.shots,
         "levels": [level_key(a) for a in options.levels],
     }
+    if book.dependence is not None:  # sector factors, Student-t (absent: hash as before)
+        data["dependence"] = repr(book.dependence)
     return hashlib.sha256(json.dumps(data, sort_keys=True).encode()).hexdigest()
 
 

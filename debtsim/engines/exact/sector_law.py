@@ -643,7 +643,6 @@ def sector_law(
     exact = plan.mode != "grid"
     diagnostics: dict[str, Any] = {
         "method": settings["sector_method"],
-        "integration_error_estimate": None,
         "discretisation_error": 0.0 if exact else float(unit),
         "loss_rounding_bound": 0.0 if exact else float(unit),
         "grid_exact": exact,

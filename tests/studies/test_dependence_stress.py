@@ -93,3 +93,11 @@ def test_sweep_point_breaking_psd_fails_and_others_finish() -> None:
     assert status == {-0.9: "failed", 0.0: "ok", 0.2: "ok"}
     error = grid.loc[grid["sector_loading_shift"] == -0.9, "error"].iloc[0]
     assert "not positive semi-definite" in error
+
+
+def test_grid_option_accepts_the_new_axes() -> None:
+    """--grid degrees_of_freedom=4,8,30 and sector_loading_shift parse as sweep axes."""
+    from debtsim.api import grid_from_options
+
+    grid = grid_from_options(["degrees_of_freedom=4,8,30", "sector_loading_shift=-0.1,0.1"])
+    assert grid == {"degrees_of_freedom": [4.0, 8.0, 30.0], "sector_loading_shift": [-0.1, 0.1]}

@@ -463,6 +463,21 @@ def _book_table(analysis: RunView) -> str:
             f"<tbody>{''.join(rows)}</tbody></table></div>")
 
 
+def _dependence_note(analysis: RunView) -> str:
+    """Return a paragraph on sector factors / Student-t dependence when the book has them."""
+    structure = analysis.model.dependence
+    if structure is None:
+        return ""
+    return (
+        f"<p><b>Dependence: {esc(structure.describe())}.</b> Instead of the one-factor Gaussian "
+        "model below, assets move with sector factors (two obligors of different sectors are "
+        "correlated through the loadings or the sector correlation matrix) and/or with one common "
+        "Student-t scale that keeps every PD and makes joint tails heavier. The comparison "
+        "without links keeps the same sectors and family, so its difference is still what the "
+        "links add.</p>"
+    )
+
+
 def _how_to_read() -> str:
     return f"""<h2>How to read this report</h2>
 <p><b>The model.</b> Every obligor's assets move with one systemic factor, shared by the whole
@@ -585,7 +600,7 @@ def render_html(analysis: RunView, created: _dt.datetime | None = None) -> str:
         f"{_charts(analysis)}"
         f"{_contagion_section(analysis)}"
         f"{_book_table(analysis)}"
-        f"{_how_to_read()}"
+        f"{_dependence_note(analysis)}{_how_to_read()}"
         f"{_appendix(analysis)}"
     )
     return render_page(title, sub, body, warnings=analysis.notes, files=RUN_FILES)

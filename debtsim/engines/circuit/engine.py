@@ -131,6 +131,29 @@ def factor_node_pd_error(model: LinkedFactorModel, grid: FactorGrid) -> float:
     return float(np.max(np.abs(integrated - model.pd) / model.pd))
 
 
+def _sector_node_pd_error(
+    model: LinkedFactorModel, grid: FactorGrid, sector_nodes: FactorGrid
+) -> float:
+    """Largest relative PD error of the (global x sector) nodes over the obligors."""
+    from debtsim.model.dependence import default_threshold, sector_conditional_pd
+
+    structure = model.dependence
+    assert structure is not None and structure.loading is not None
+    a = np.asarray(structure.loading)[structure.sector_of]
+    thr = default_threshold(model.pd, None)
+    worst = 0.0
+    for i in range(model.n_obligors):
+        y = (a[i] * grid.nodes[:, None]
+             + np.sqrt(max(1.0 - a[i] ** 2, 0.0)) * sector_nodes.nodes[None, :]).ravel()
+        w = (grid.weights[:, None] * sector_nodes.weights[None, :]).ravel()
+        p = sector_conditional_pd(
+            thr[i : i + 1], np.asarray(model.asset_correlation)[i : i + 1], y
+        )[:, 0]
+        if 0.0 < model.pd[i] < 1.0:
+            worst = max(worst, abs(float(w @ p) / float(model.pd[i]) - 1.0))
+    return worst
+
+
 class CircuitEngine(Engine):
     """Run the model's circuit on Aer's statevector simulator (CPU).
 
@@ -159,6 +182,7 @@ class CircuitEngine(Engine):
         seed: int | None = None,
         max_qubits: int = DEFAULT_MAX_QUBITS,
         factor_grid: FactorGrid | None = None,
+        sector_grid: FactorGrid | None = None,
     ) -> None:
         if shots is not None and shots < 1:
             raise ValueError(f"shots must be a positive integer or None, got {shots}")
@@ -170,14 +194,12 @@ class CircuitEngine(Engine):
         self.seed = seed
         self.max_qubits = max_qubits
         self.factor_grid = factor_grid
+        self.sector_grid = sector_grid
 
     def refusal(self, model: LinkedFactorModel) -> str | None:
         """Why the circuit engine cannot run ``model``, or None when it can."""
         if model.dependence is not None:
-            return (
-                f"the circuit engine does not run {model.dependence.describe()} yet; "
-                "use the 'exact' engine"
-            )
+            return self._sector_refusal(model)
         grid = factor_grid_for(model, self.factor_grid)
         k = factor_qubits_of(grid)
         qubits = model.n_obligors + k
@@ -201,6 +223,40 @@ class CircuitEngine(Engine):
             return f"{problem}; use the 'sample' or 'exact' engine"
         return None
 
+    def _sector_refusal(self, model: LinkedFactorModel) -> str | None:
+        """Refusal for sector factors / Student-t (see :mod:`.sector_circuit`)."""
+        from debtsim.engines.circuit.sector_circuit import (
+            SectorLayout,
+            sector_circuit_problem,
+            sector_grids,
+        )
+
+        structure = model.dependence
+        assert structure is not None
+        if structure.form != "loadings" or structure.student_t:
+            return (
+                f"the circuit engine runs sector loadings with Gaussian dependence only, not "
+                f"{structure.describe()}; use the 'exact' engine"
+                + (" (or 'sample' for a sector correlation matrix)"
+                   if structure.form == "matrix" else "")
+            )
+        g, x = sector_grids(model, self.factor_grid, self.sector_grid)
+        layout = SectorLayout(
+            factor_qubits_of(g), factor_qubits_of(x), len(structure.sector_names)
+        )
+        qubits = model.n_obligors + layout.qubits
+        if qubits > self.max_qubits or model.n_obligors > MAX_OBLIGORS:
+            return (
+                f"the circuit needs {qubits} qubits ({model.n_obligors} obligors + "
+                f"{layout.k} global + {layout.sectors} x {layout.m} sector qubits); the circuit "
+                f"engine accepts at most {self.max_qubits} qubits and {MAX_OBLIGORS} obligors; "
+                "use the 'exact' engine"
+            )
+        problem = sector_circuit_problem(model, layout)
+        if problem is not None:
+            return f"{problem}; use the 'exact' engine"
+        return None
+
     def run_without_links(
         self, model: LinkedFactorModel, *, progress: ProgressHook | None = None
     ) -> LossDistribution:
@@ -212,6 +268,13 @@ class CircuitEngine(Engine):
         """
         from debtsim.engines.exact.engine import ExactEngine
 
+        if model.dependence is not None:
+            from debtsim.engines.circuit.sector_circuit import sector_grids
+
+            g, x = sector_grids(model, self.factor_grid, self.sector_grid)
+            return ExactEngine(factor_grid=g, sector_grid=x).run(
+                model.without_links(), progress=progress
+            )
         on_nodes = ExactEngine(factor_grid=factor_grid_for(model, self.factor_grid))
         return on_nodes.run(model.without_links(), progress=progress)
 
@@ -234,11 +297,20 @@ class CircuitEngine(Engine):
         steps = 3
         if progress is not None:
             progress(0, steps)
-        grid = factor_grid_for(model, self.factor_grid)
-        k = factor_qubits_of(grid)
         n = model.n_obligors
         measure = self.shots is not None
-        qc = build_circuit(model, grid, measure=measure)
+        if model.dependence is not None:
+            from debtsim.engines.circuit.sector_circuit import build_sector_circuit, sector_grids
+
+            grid, sector_nodes = sector_grids(model, self.factor_grid, self.sector_grid)
+            qc = build_sector_circuit(model, grid, sector_nodes, measure=measure)
+            k = qc.num_qubits - n
+            node_error = _sector_node_pd_error(model, grid, sector_nodes)
+        else:
+            grid = factor_grid_for(model, self.factor_grid)
+            k = factor_qubits_of(grid)
+            qc = build_circuit(model, grid, measure=measure)
+            node_error = factor_node_pd_error(model, grid)
         if not measure:
             obligor = next(r for r in qc.qregs if r.name == "obligor")
             qc.save_probabilities(obligor, label="obligors")
@@ -250,13 +322,19 @@ class CircuitEngine(Engine):
             "qubits": n + k,
             "shots": self.shots,
         }
+        if model.dependence is not None:
+            settings["dependence"] = model.dependence.describe()
+            settings["sector_nodes"] = len(sector_nodes)
+            settings["sector_method"] = (
+                "global register plus one register per sector; rotations multiplexed on the "
+                "global register, the obligor's sector register and its debtors"
+            )
         # Aer's qubit truncation drops idle factor qubits (every R = 0) and then remaps the
         # native multiplexer wrongly: wrong probabilities or heap corruption (qiskit-aer 0.18)
         simulator = AerSimulator(
             method="statevector", precision="double", enable_truncation=False
         )
         loss_each = np.asarray(model.loss_given_default, dtype=float)
-        node_error = factor_node_pd_error(model, grid)
         if not measure:
             result = _checked(simulator.run(qc, shots=1).result())
             probs = np.asarray(result.data(0)["obligors"], dtype=float)

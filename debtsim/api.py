@@ -328,9 +328,10 @@ class CircuitReport:
         Run on any simulator or device, each shot is one scenario of final
         defaults (a bit per obligor, in book order).
         """
-        from debtsim.engines.circuit.builder import build_circuit, to_qasm3
+        from debtsim.engines.circuit.builder import to_qasm3
+        from debtsim.engines.circuit.sector_circuit import model_circuit
 
-        return to_qasm3(build_circuit(self.model, measure=True))
+        return to_qasm3(model_circuit(self.model, measure=True))
 
 
 def circuit_report(book: Book) -> CircuitReport:
@@ -341,18 +342,19 @@ def circuit_report(book: Book) -> CircuitReport:
     DebtsimError
         When the circuit cannot be built (e.g. a linked group too large to load).
     """
-    from debtsim.engines.circuit.builder import build_circuit, circuit_size
+    from debtsim.engines.circuit.builder import circuit_size
     from debtsim.engines.circuit.engine import CircuitEngine
+    from debtsim.engines.circuit.sector_circuit import model_circuit
     from debtsim.model.specification import LinkedFactorModel
 
     model = LinkedFactorModel.from_book(book)
     refusal = CircuitEngine().refusal(model)
-    qc = build_circuit(model)
+    qc = model_circuit(model)
     size = circuit_size(qc)
     return CircuitReport(
         circuit=qc,
         qubits=int(size.qubits),
-        factor_qubits=model.factor_qubits,
+        factor_qubits=int(size.qubits) - model.n_obligors,  # global (+ sector) registers
         obligors=model.n_obligors,
         depth=int(size.depth),
         two_qubit_gates=int(size.two_qubit_gates),

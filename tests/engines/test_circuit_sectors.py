@@ -96,3 +96,13 @@ def test_qubit_limit_is_refused_naming_exact() -> None:
     model = LinkedFactorModel.from_book(replace(LINKED, dependence=spec))
     reason = CircuitEngine(max_qubits=12).refusal(model)
     assert reason is not None and "19 qubits" in reason and "'exact'" in reason
+
+
+def test_circuit_report_of_a_sector_book_counts_the_sector_registers() -> None:
+    """debtsim circuit: global + sector registers counted; QASM has the sector registers."""
+    import debtsim
+
+    report = debtsim.circuit_report(with_sectors(LINKED, {"a": 0.8, "b": 0.4}))
+    assert report.qubits == 6 + 5 + 2 * 2 and report.factor_qubits == 9
+    assert report.refusal is None
+    assert "sector_1" in report.qasm()

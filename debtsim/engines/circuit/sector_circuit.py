@@ -41,6 +41,7 @@ from debtsim.model.specification import LinkedFactorModel
 __all__ = [
     "SectorLayout",
     "build_sector_circuit",
+    "model_circuit",
     "sector_circuit_problem",
     "sector_grids",
     "sector_rotation_plan",
@@ -238,3 +239,29 @@ def build_sector_circuit(
         qc.add_register(defaults)
         qc.measure(obligor, defaults)
     return qc
+
+
+def model_circuit(model: LinkedFactorModel, *, measure: bool = False) -> QuantumCircuit:
+    """The circuit of any model the circuit engine can encode, with default nodes.
+
+    One factor: :func:`debtsim.engines.circuit.builder.build_circuit`; sector
+    loadings (Gaussian): :func:`build_sector_circuit`.
+
+    Raises
+    ------
+    EngineRefusedError
+        For a sector correlation matrix or Student-t dependence, which have no
+        circuit here.
+    """
+    from debtsim.engines.circuit.builder import build_circuit
+    from debtsim.errors import EngineRefusedError
+
+    structure = model.dependence
+    if structure is None:
+        return build_circuit(model, measure=measure)
+    if structure.form != "loadings" or structure.student_t:
+        raise EngineRefusedError(
+            f"no circuit for {structure.describe()}: the circuit encodes sector loadings with "
+            "Gaussian dependence only; use the 'exact' engine"
+        )
+    return build_sector_circuit(model, measure=measure)

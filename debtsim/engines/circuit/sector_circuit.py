@@ -242,7 +242,7 @@ def build_sector_circuit(
 
 
 def model_circuit(model: LinkedFactorModel, *, measure: bool = False) -> QuantumCircuit:
-    """The circuit of any model the circuit engine can encode, with default nodes.
+    """Build the circuit of any model the circuit engine can encode, with default nodes.
 
     One factor: :func:`debtsim.engines.circuit.builder.build_circuit`; sector
     loadings (Gaussian): :func:`build_sector_circuit`.

@@ -253,11 +253,11 @@ def default_sector_grid(
 ) -> FactorGrid:
     """Shared grid of sector-factor values ``y`` for one sector's obligors.
 
-    Density ``base + resolution |d E[L_s|y] / dy| / sd(L_s|y) + order /
-    (3 sqrt(1 - a^2))``: the big-book rule on the sector's own conditional
-    law, plus one ``order``-node panel per three conditional standard
-    deviations of the sector factor given ``G`` (a third of that beyond
-    ``|y| = 5.5``).
+    Density ``resolution |d E[L_s|y] / dy| / sd(L_s|y)`` (the big-book rule
+    on the sector's own conditional law) on top of the larger of ``base``
+    (as in the one-factor grid) and ``order / (3 sqrt(1 - a^2))``: one
+    ``order``-node panel per three conditional standard deviations of the
+    sector factor given ``G`` (a third of that beyond ``|y| = 5.5``).
     """
     structure = model.dependence
     assert structure is not None
@@ -296,7 +296,8 @@ def default_sector_grid(
             dmean = slope @ sum_l
             var = (p * ndtr(-x)) @ sum_l2
             out = np.maximum(out, _sharp_density(y, base, resolution, dmean, var))
-        return out + kernel_floor(y)
+        # the sharp term on top of the larger of the two floors
+        return out - base + np.maximum(base, kernel_floor(y))
 
     return adaptive_grid(
         density, lower=-FACTOR_LIMIT, upper=FACTOR_LIMIT, order=order, max_nodes=200_000

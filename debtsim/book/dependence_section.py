@@ -98,7 +98,7 @@ def _shown_node(node: Node) -> str:
         return "a mapping"
     if kind == "tagged":
         return f"a value tagged {str(node.tag).replace('tag:yaml.org,2002:', '!!')}"
-    text = str(node.value)  # type: ignore[attr-defined]
+    text = str(node.value)
     if value is None:
         return "nothing" if text in ("", "~") else text
     if isinstance(value, str):

@@ -147,20 +147,23 @@ def chi_square_grid(nu: float, *, panels: int = 12, order: int = 8) -> FactorGri
     )
 
 
-def _class_sums(keys: FloatArray, loss: FloatArray) -> tuple[FloatArray, FloatArray, FloatArray]:
-    """Return unique rows of ``keys`` with summed loss and squared loss (binned when many)."""
+def _class_sums(
+    keys: FloatArray, loss: FloatArray, bins: tuple[float, ...]
+) -> tuple[FloatArray, FloatArray, FloatArray]:
+    """Return unique rows of ``keys`` with summed loss and squared loss.
+
+    With more than 1024 distinct rows, column ``c`` is first rounded to
+    multiples of ``1 / bins[c]`` (only node placement uses these classes).
+    """
     uniq, inverse = np.unique(keys, axis=0, return_inverse=True)
     if uniq.shape[0] > 1024:
-        binned = (
-            np.round(keys * np.array([1.0, 8.0, 64.0, 64.0])[: keys.shape[1]])
-            / np.array([1.0, 8.0, 64.0, 64.0])[: keys.shape[1]]
-        )
-        uniq, inverse = np.unique(binned, axis=0, return_inverse=True)
+        scale = np.asarray(bins, dtype=float)
+        uniq, inverse = np.unique(np.round(keys * scale) / scale, axis=0, return_inverse=True)
     inverse = inverse.ravel()
     return (
-        uniq,
-        np.bincount(inverse, weights=loss, minlength=uniq.shape[0]),
-        np.bincount(inverse, weights=loss**2, minlength=uniq.shape[0]),
+        np.asarray(uniq, dtype=float),
+        np.asarray(np.bincount(inverse, weights=loss, minlength=uniq.shape[0]), dtype=float),
+        np.asarray(np.bincount(inverse, weights=loss**2, minlength=uniq.shape[0]), dtype=float),
     )
 
 
@@ -209,7 +212,7 @@ def default_global_grid(
     keys = np.stack(
         [structure.sector_of[lossy].astype(float), np.log(model.pd[lossy]), r[lossy]], axis=1
     )
-    uniq, sum_l, sum_l2 = _class_sums(keys, loss[lossy])
+    uniq, sum_l, sum_l2 = _class_sums(keys, loss[lossy], (1.0, 8.0, 64.0))
     sec = uniq[:, 0].astype(np.int64)
     pd_c = np.exp(uniq[:, 1])
     r_c = uniq[:, 2]
@@ -282,7 +285,7 @@ def default_sector_grid(
             max_nodes=200_000,
         )
     keys = np.stack([np.log(pd[lossy]), r[lossy]], axis=1)
-    uniq, sum_l, sum_l2 = _class_sums(keys, loss[lossy])
+    uniq, sum_l, sum_l2 = _class_sums(keys, loss[lossy], (8.0, 64.0))
     thr = default_threshold(np.exp(uniq[:, 0]), structure.degrees_of_freedom)
     r_c = uniq[:, 1]
     scales = _representative_scales(structure)

@@ -101,3 +101,16 @@ def test_grid_option_accepts_the_new_axes() -> None:
 
     grid = grid_from_options(["degrees_of_freedom=4,8,30", "sector_loading_shift=-0.1,0.1"])
     assert grid == {"degrees_of_freedom": [4.0, 8.0, 30.0], "sector_loading_shift": [-0.1, 0.1]}
+
+
+def test_stress_names_the_scenario_whose_shift_breaks_the_matrix() -> None:
+    """A stress run reports the failing scenario and why; the other scenarios were computed."""
+    from debtsim.errors import DebtsimError
+
+    book = replace(matrix_book(0.5), obligors=demo().obligors[:12], links=())
+    scenarios = [
+        Scenario(name="fine", sector_loading_shift=0.1),
+        Scenario(name="broken", sector_loading_shift=-0.9),
+    ]
+    with pytest.raises(DebtsimError, match="scenario 'broken': .*not positive semi-definite"):
+        debtsim.stress(book, scenarios, engine="sample", samples=2000)

@@ -289,10 +289,24 @@ def _sweep_frame(result: SweepResult, folder: Path | None) -> pd.DataFrame:
 
 
 def describe_book(book: Book) -> str:
-    """Return the one-screen overview ``debtsim check`` prints (size, exposure, links)."""
-    from debtsim.report.book_overview import format_overview, overview
+    """Return the one-screen overview ``debtsim check`` prints (size, exposure, links).
 
-    return format_overview(overview(book))
+    A book with sector factors also gets the sector table (obligors, exposure,
+    mean PD and implied asset correlation inside and between sectors); one with
+    Student-t dependence a line naming it.
+    """
+    from debtsim.report.book_overview import format_overview, overview
+    from debtsim.report.sector_table import format_sector_table, sector_table
+
+    text = format_overview(overview(book))
+    table = sector_table(book)
+    if table is not None:
+        text += "\n\n" + format_sector_table(table, book.currency)
+    elif book.dependence is not None:
+        text += f"\nDependence: {book.dependence.family}"
+        if book.dependence.degrees_of_freedom is not None:
+            text += f", {book.dependence.degrees_of_freedom:g} degrees of freedom"
+    return text
 
 
 @dataclass(frozen=True, eq=False)

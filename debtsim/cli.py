@@ -197,18 +197,9 @@ def _print_run(result: RunResult, folder: Path) -> None:
 def check(book: BookArg) -> None:
     """Validate BOOK and print a one-screen overview; writes nothing."""
     import debtsim
-    from debtsim.report.sector_table import format_sector_table, sector_table
 
     try:
-        loaded = debtsim.load_book(book)
-        text = debtsim.describe_book(loaded)
-        table = sector_table(loaded)
-        if table is not None:
-            text += "\n\n" + format_sector_table(table, loaded.currency)
-        elif loaded.dependence is not None:
-            text += f"\nDependence: {loaded.dependence.family}"
-            if loaded.dependence.degrees_of_freedom is not None:
-                text += f", {loaded.dependence.degrees_of_freedom:g} degrees of freedom"
+        text = debtsim.describe_book(debtsim.load_book(book))
     except DebtsimError as error:
         fail(error)
         return

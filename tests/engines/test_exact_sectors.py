@@ -311,3 +311,14 @@ def test_links_joining_many_sectors_are_refused_naming_sample() -> None:
     )
     reason = ExactEngine().refusal(LinkedFactorModel.from_book(book))
     assert reason is not None and "--engine sample" in reason and "3 sectors" in reason
+
+
+def test_contributions_refuse_sector_models_rather_than_ignore_them() -> None:
+    """The one-factor moments of the Euler allocation are not used on a sector model."""
+    from debtsim.engines.exact.contributions import exact_moments
+
+    book = with_sectors(BOOK, {"a": 0.5, "b": 0.7, "c": 0.9})
+    model = LinkedFactorModel.from_book(book)
+    engine = ExactEngine()
+    with pytest.raises(EngineRefusedError, match="not computed"):
+        exact_moments(engine, model, engine.run(model), (0.99,))

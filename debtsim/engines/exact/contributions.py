@@ -215,6 +215,10 @@ def exact_moments(
     reason = engine.refusal(model)
     if reason is not None:
         raise EngineRefusedError(reason)
+    if model.dependence is not None:  # these moments condition on one factor only
+        raise EngineRefusedError(
+            f"risk contributions are not computed for {model.dependence.describe()} yet"
+        )
     levels = tuple(sorted(float(a) for a in levels))
     grid = engine.factor_grid if engine.factor_grid is not None else engine.default_factor_grid(
         model

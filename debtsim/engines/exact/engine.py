@@ -167,7 +167,7 @@ class ExactEngine(Engine):
         if model.dependence is not None:
             from debtsim.engines.exact.sector_law import sector_refusal
 
-            reason = sector_refusal(model, _link_groups(model))
+            reason = sector_refusal(model, _linked_groups(model))
             if reason is not None:
                 return reason
         if model.n_links == 0:

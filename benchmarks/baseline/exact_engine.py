@@ -54,7 +54,7 @@ from scipy.special import ndtr, ndtri
 from debtsim._typing import FloatArray
 from debtsim.distribution import LossDistribution
 from debtsim.engines.base import Engine, ProgressHook
-from debtsim.engines.exact.loss_grid import (
+from baseline.exact_loss_grid import (
     SERIES_TOLERANCE,
     WINDOW_TAIL,
     AtomConvolution,
@@ -65,7 +65,7 @@ from debtsim.engines.exact.loss_grid import (
 )
 from debtsim.errors import EngineRefusedError
 from debtsim.model.factor_grid import FactorGrid, adaptive_grid
-from debtsim.model.linked_group_law import MAX_GROUP_SIZE, group_law
+from baseline.linked_group_law import MAX_GROUP_SIZE, group_law
 from debtsim.model.specification import LinkedFactorModel, conditional_default_probability
 
 __all__ = ["ExactEngine"]

@@ -77,7 +77,7 @@ from scipy.special import ndtr
 from debtsim._typing import FloatArray
 from debtsim.distribution import LossDistribution
 from debtsim.engines.base import Engine, ProgressHook
-from debtsim.engines.sample.scenario_draws import (
+from baseline.scenario_draws import (
     BLOCK,
     CascadeSampler,
     Proposal,

@@ -95,7 +95,7 @@ def _level_masks(s: int) -> list[IntArray]:
 
 
 def _subset_pairs(targets: IntArray, m: int) -> tuple[IntArray, IntArray]:
-    """Proper subsets ``U`` of each target (all of size ``m``) and the rests ``T \\ U``.
+    """Proper subsets ``U`` of each target (all of size ``m``) and the rests ``T - U``.
 
     Returns arrays of shape ``(targets.size, 2^m - 1)``.
     """
@@ -111,7 +111,7 @@ def _subset_pairs(targets: IntArray, m: int) -> tuple[IntArray, IntArray]:
 
 @dataclass(frozen=True)
 class _Level:
-    """Targets ``T`` of one size and the sparse matrix ``C[T, U] = cut(U, T \\ U)``, ``U < T``."""
+    """Targets ``T`` of one size and the sparse matrix ``C[T, U] = cut(U, T - U)``, ``U < T``."""
 
     targets: IntArray
     cut: sparse.csr_matrix
@@ -129,7 +129,7 @@ def _cut(inflow: FloatArray, u: IntArray, rest: IntArray) -> FloatArray:
 
 
 def _build_levels(s: int, links: tuple[tuple[int, int, float], ...]) -> list[_Level]:
-    """The recursion's sparse cut matrices, level by level (node-independent)."""
+    """Build the recursion's sparse cut matrices, level by level (node-independent)."""
     inflow = _inflow_tables(s, links)
     full = 1 << s
     levels: list[_Level] = []

@@ -58,8 +58,8 @@ from debtsim.engines.exact.loss_grid import (
     SERIES_TOLERANCE,
     WINDOW_TAIL,
     AtomConvolution,
+    SeriesKernel,
     bernstein_halfwidth,
-    grid_law,
     place_window,
     product_law,
 )
@@ -78,6 +78,8 @@ FACTOR_LIMIT = 8.5
 _SHARP_REGION_TAIL = 1e-6
 #: Node-law values below this fraction of the node's largest are FFT round-off.
 _NOISE_FLOOR = 1e-15
+#: Loosest series tolerance of one node (nodes of tiny weight; see _run_grid).
+_LOOSEST = 1e-8
 #: Books with more loss-bearing obligors than this never keep exact loss values.
 _ATOMS_MAX_OBLIGORS = 40
 #: Relative tolerance for recognising losses as multiples of a common unit.
@@ -603,8 +605,11 @@ def _run_grid(
     cls_pr = cls[:, 0]
     cls_k = cls[:, 1].astype(np.int64)
     cls_count = cls_count.astype(float)
-    cls_kc = cls_k * cls_count
-    cls_k2c = cls_k.astype(float) ** 2 * cls_count
+    kernel = SeriesKernel(cls_k, cls_count)
+    # all-different books: one class per (PD, R) pair, in pair order, no gather needed
+    identity = cls_pr.size == pr_unique.shape[0] and bool(
+        np.array_equal(cls_pr, np.arange(cls_pr.size))
+    )
     # expected-loss bookkeeping uses the true losses of every single obligor
     pr_loss = np.bincount(pr_of[single], weights=loss[single], minlength=pr_unique.shape[0])
     nodes, weights = grid.nodes, grid.weights
@@ -617,6 +622,8 @@ def _run_grid(
     exp_l = np.zeros(n_nodes)  # E[L | z] in currency
     truncation = 0.0
     widest = 0
+    # keep the (nodes x classes) probability block near 2^21 numbers (16 MB)
+    batch = max(1, min(batch, (1 << 21) // max(pr_unique.shape[0], 1)))
     for start in range(0, n_nodes, batch):
         z = nodes[start : start + batch]
         w = weights[start : start + batch]
@@ -630,14 +637,10 @@ def _run_grid(
                 dense.append((int(pos[0]), block))
             group_offset, group_law_batch = product_law(dense)
         for j in range(z.size):
-            p = p_pr[j, cls_pr]
-            mean = float(np.sum(p * cls_kc))
-            var = float(np.sum(p * (1.0 - p) * cls_k2c))
-            moving = (p > 0) & (p < 1)
-            bound = float(cls_k[moving].max()) if moving.any() else 0.0
-            lowest = int(np.sum(cls_kc[p >= 1]))
-            highest = int(np.sum(cls_kc[p > 0]))
-            el = float(np.sum(p_pr[j] * pr_loss))
+            state = kernel.node(p_pr[j] if identity else p_pr[j, cls_pr])
+            mean, var, bound = state.mean, state.var, state.bound
+            lowest, highest = state.lowest, state.highest
+            el = float(p_pr[j] @ pr_loss)
             if groups:
                 at = start + j
                 mean += float(glaws.mean[at])
@@ -652,8 +655,12 @@ def _run_grid(
             window = place_window(mean, half, lowest, highest, top)
             widest = max(widest, window.width)
             extra = (group_offset, group_law_batch[j]) if groups else None
-            law, trunc = grid_law(cls_k, p, window, count=cls_count, extra=extra)
-            truncation = max(truncation, trunc)
+            # a node of weight w may carry error tol / (N w): the mixture's stays <= tol
+            node_tol = min(
+                max(kernel.tolerance / (n_nodes * max(w[j], 1e-300)), kernel.tolerance), _LOOSEST
+            )
+            law, trunc = kernel.law(state, window, extra, node_tol)
+            truncation += w[j] * trunc
             # FFT round-off: nothing outside the possible range, nothing below the noise floor
             law[: max(lowest - window.start, 0)] = 0.0
             law[max(highest + 1 - window.start, 0) :] = 0.0

@@ -46,7 +46,9 @@ from debtsim._typing import FloatArray
 __all__ = [
     "AtomConvolution",
     "HARD_ORDER",
+    "NodeState",
     "SERIES_TOLERANCE",
+    "SeriesKernel",
     "WINDOW_TAIL",
     "Window",
     "bernoulli_sums",
@@ -62,10 +64,12 @@ IntArray = NDArray[np.int64]
 SERIES_TOLERANCE = 1e-14
 #: Probability allowed outside a node's window on each side (Bernstein bound).
 WINDOW_TAIL = 1e-16
-#: Classes needing more series terms than this are summed exactly instead.
-HARD_ORDER = 512
-#: Series orders are rounded up to these values so obligors batch together.
-_ORDER_BUCKETS = np.unique(np.round(np.sqrt(2.0) ** np.arange(0, 64)).astype(np.int64))
+#: Series work (classes x terms) below which the last rounds run as one matrix.
+_MATRIX_FINISH = 1 << 18
+#: Below this many active classes the remaining series terms are built as matrices.
+_RAGGED_FINISH = 4096
+#: Classes needing more series terms than this are multiplied in exactly instead.
+HARD_ORDER = 8192
 
 
 def bernstein_halfwidth(variance: float, bound: float, tail: float = WINDOW_TAIL) -> float:
@@ -132,83 +136,6 @@ def place_window(
         return Window(0, top + 1)
     start = min(lo, top + 1 - width)
     return Window(max(start, 0), width)
-
-
-def _log_coefficients(
-    k: IntArray,
-    p: FloatArray,
-    count: FloatArray,
-    width: int,
-    tolerance: float,
-    max_order: int,
-) -> tuple[FloatArray | None, float, int, IntArray, float]:
-    """Log-PGF of independent classes ``(1 - p + p x^k)^count`` modulo ``x^width - 1``.
-
-    Returns
-    -------
-    coefficients : ndarray, shape (width,), or None
-        Series coefficients of the log-PGF, folded modulo ``width`` (None
-        when there are no series terms).
-    const : float
-        Constant term: ``count * log(1 - p)``, or ``count * log p`` for
-        flipped classes (``p > 1/2``).
-    shift : int
-        ``x`` power factored out: ``count * k`` over flipped and certain classes.
-    direct : ndarray of int
-        Classes too close to ``p = 1/2`` for the series (handled directly).
-    truncation : float
-        Bound on the dropped part of the series.
-
-    """
-    live = (p > 0.0) & (k > 0)
-    certain = live & (p >= 1.0)
-    shift = int(np.sum(k[certain] * count[certain].astype(np.int64)))
-    idx = np.flatnonzero(live & ~certain)
-    if idx.size == 0:
-        return None, 0.0, shift, np.zeros(0, dtype=np.int64), 0.0
-    kk = k[idx]
-    pp = p[idx]
-    cc = count[idx]
-    flip = pp > 0.5
-    with np.errstate(over="ignore"):  # the branch not taken overflows for denormal p
-        theta = np.where(flip, (1.0 - pp) / pp, pp / (1.0 - pp))
-    # order R with theta^(R+1) / ((R+1)(1-theta)) <= tolerance / total count
-    each = tolerance / float(cc.sum())
-    with np.errstate(divide="ignore", invalid="ignore"):
-        need = np.ceil(np.log(each * (1.0 - theta)) / np.log(theta)) - 1.0
-    need = np.where(theta <= 0.0, 0.0, np.where(theta >= 1.0, np.inf, np.maximum(need, 1.0)))
-    far = need > max_order
-    series = ~far
-    const = float(
-        np.sum(cc[series & ~flip] * np.log1p(-pp[series & ~flip]))
-        + np.sum(cc[series & flip] * np.log(pp[series & flip]))
-    )
-    shift += int(np.sum(kk[series & flip] * cc[series & flip].astype(np.int64)))
-    signed_k = np.where(flip, -kk, kk)
-    bucket = np.searchsorted(_ORDER_BUCKETS, np.where(series, need, 0.0))
-    bucket[~series | (need <= 0)] = -1
-    coefficients = np.zeros(width)
-    truncation = 0.0
-    for b in np.flatnonzero(np.bincount(bucket + 1, minlength=_ORDER_BUCKETS.size + 1)[1:]):
-        order = int(_ORDER_BUCKETS[b])
-        sel = np.flatnonzero(bucket == b)
-        th = theta[sel]
-        if sel.size >= order:  # many short rows: build column by column
-            powers = np.empty((sel.size, order))
-            powers[:, 0] = th
-            for r in range(1, order):
-                np.multiply(powers[:, r - 1], th, out=powers[:, r])
-        else:  # few long rows
-            powers = np.cumprod(np.broadcast_to(th[:, None], (sel.size, order)), axis=1)
-        r_all = np.arange(1, order + 1)
-        weight = np.where(r_all % 2 == 1, 1.0, -1.0) / r_all
-        coef = powers * weight[None, :]
-        if not np.all(cc[sel] == 1.0):
-            coef *= cc[sel, None]
-        pos = np.mod(signed_k[sel, None] * r_all[None, :], width)
-        coefficients += np.bincount(pos.ravel(), weights=coef.ravel(), minlength=width)
-        truncation += float(np.sum(cc[sel] * th * powers[:, -1] / ((order + 1) * (1.0 - th))))
-    return coefficients, const, shift, idx[far], truncation
 
 
 def bernoulli_sums(
@@ -294,6 +221,268 @@ def product_law(laws: list[tuple[int, FloatArray]]) -> tuple[int, FloatArray]:
     return offset, law
 
 
+@dataclass(frozen=True)
+class NodeState:
+    """One node's default probabilities of the kernel's classes, with their moments.
+
+    ``mean`` and ``var`` are the conditional mean and variance of the loss in
+    grid units; ``bound`` the largest loss of a class that is neither certain
+    nor impossible; ``lowest`` and ``highest`` the smallest and largest
+    possible loss.
+    """
+
+    p: FloatArray
+    one_minus: FloatArray
+    mean: float
+    var: float
+    bound: float
+    lowest: int
+    highest: int
+
+
+class SeriesKernel:
+    """Conditional loss laws of independent loss classes, prepared once per run.
+
+    Class ``c`` holds ``count[c]`` obligors, each losing ``k[c]`` grid units
+    on default with the node's probability ``p[c]``.  At a node the log-PGF
+    is summed as in the module notes, but grouped by distinct grid loss: with
+    ``q = min(p, 1 - p)`` and ``theta = q / (1 - q)``, round ``r`` adds the
+    power sums ``sum count * theta^r`` of all classes sharing a grid loss
+    (and a side of ``p = 1/2``) in one ``bincount``, then places the few
+    distinct sums at ``+-r k`` on the window.  Classes are sorted by the
+    number of terms they need, so round ``r`` touches only the prefix still
+    active; the last few long rows are finished as one matrix.  A class
+    needing more than ``hard_order`` terms (``p`` within about 1% of 1/2)
+    enters exactly: ``count * log(1 - p + p w^k)`` on the window's
+    frequencies ``w``.
+
+    Truncation: class ``c`` stops after ``R_c`` terms with
+    ``theta^(R+1) / ((R+1) (1 - theta)) <= tolerance / sum(count)``, so the
+    dropped part of ``log G`` is at most ``tolerance`` at every frequency.
+
+    Parameters
+    ----------
+    k : ndarray of int, shape (n,)
+        Grid loss of each class (classes with ``k = 0`` are ignored).
+    count : ndarray, shape (n,), optional
+        Identical obligors per class (default 1).
+    tolerance : float
+        Bound on the truncation error of ``log G``.
+    hard_order : int
+        Classes needing more terms are handled exactly.
+
+    """
+
+    def __init__(
+        self,
+        k: IntArray,
+        count: FloatArray | None = None,
+        *,
+        tolerance: float = SERIES_TOLERANCE,
+        hard_order: int = HARD_ORDER,
+    ) -> None:
+        k = np.asarray(k, dtype=np.int64)
+        count = np.ones(k.size) if count is None else np.asarray(count, dtype=float)
+        keep = k > 0
+        self._keep: IntArray | None = None if keep.all() else np.flatnonzero(keep)
+        self.k = k[keep]
+        self.count = count[keep]
+        self.kc = self.k * self.count
+        self.k2c = self.k.astype(float) ** 2 * self.count
+        self.total = int(np.sum(self.k * np.round(self.count).astype(np.int64)))
+        self.kmax = int(self.k.max()) if self.k.size else 0
+        self._distinct, inverse = np.unique(self.k, return_inverse=True)
+        self._key = inverse.ravel().astype(np.int64)
+        self._nkeys = int(self._distinct.size)
+        # signed grid loss of each key: + for p <= 1/2, - for flipped classes
+        self._signed = np.concatenate([self._distinct, -self._distinct])
+        self._ones = bool(np.all(self.count == 1.0))
+        total_count = float(self.count.sum())
+        self.tolerance = float(tolerance)
+        self._total_count = max(total_count, 1.0)
+        self.hard_order = int(hard_order)
+
+    @property
+    def size(self) -> int:
+        """Number of loss-bearing classes."""
+        return int(self.k.size)
+
+    def node(self, p: FloatArray) -> NodeState:
+        """Moments of the loss at one node, given the classes' default probabilities."""
+        p = np.asarray(p, dtype=float)
+        if self._keep is not None:
+            p = p[self._keep]
+        one_minus = 1.0 - p
+        mean = float(np.sum(p * self.kc))  # plain sums: no BLAS threads per node
+        var = float(np.sum(p * one_minus * self.k2c))
+        if p.size == 0:
+            return NodeState(p, one_minus, 0.0, 0.0, 0.0, 0, 0)
+        if p.min() > 0.0 and p.max() < 1.0:
+            return NodeState(p, one_minus, mean, var, float(self.kmax), 0, self.total)
+        moving = (p > 0.0) & (p < 1.0)
+        bound = float(self.k[moving].max()) if moving.any() else 0.0
+        lowest = int(np.sum(self.kc[p >= 1.0]))
+        highest = int(np.sum(self.kc[p > 0.0]))
+        return NodeState(p, one_minus, mean, var, bound, lowest, highest)
+
+    def law(
+        self,
+        state: NodeState,
+        window: Window,
+        extra: tuple[int, FloatArray] | None = None,
+        tolerance: float | None = None,
+    ) -> tuple[FloatArray, float]:
+        """Conditional loss law on ``window`` (see :func:`grid_law`).
+
+        ``tolerance`` overrides the kernel's bound on the truncation error of
+        ``log G`` for this node (the engine loosens it for nodes of tiny
+        weight, keeping the weighted sum over nodes within the kernel's bound).
+        """
+        tol = self.tolerance if tolerance is None else float(tolerance)
+        width = window.width
+        p, one_minus = state.p, state.one_minus
+        log_spectrum = np.zeros(width // 2 + 1, dtype=complex)
+        hard_spectrum: NDArray[np.complex128] | None = None
+        coefficients = np.zeros(width)
+        const = 0.0
+        shift = 0
+        truncation = 0.0
+        if p.size:
+            flip = p > 0.5
+            q = np.where(flip, one_minus, p)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                theta = q / (1.0 - q)
+                log_theta = np.log(theta)
+                log_each = np.log(tol / self._total_count)
+                need = np.ceil((log_each + np.log1p(-theta)) / log_theta) - 1.0
+            need = np.where(theta > 0.0, np.maximum(need, 1.0), 0.0)
+            need[theta >= 1.0] = np.inf  # p = 1/2 exactly: the series does not converge
+            hard = need > self.hard_order
+            n_hard = int(np.count_nonzero(hard))
+            count = self.count
+            series = ~hard
+            # log(1 - q) over series classes; for flipped ones that is log p
+            logs = np.log1p(-q)
+            const = float(np.sum(logs * count if n_hard == 0 else logs[series] * count[series]))
+            shift = int(round(float(np.sum(self.kc[flip & series]))))
+            if n_hard:
+                hard_spectrum = self._hard_spectrum(p[hard], self.k[hard], count[hard], width)
+                need = np.where(series, need, 0.0)
+            self._add_series(coefficients, theta, need, flip, width)
+            truncation = tol
+        if coefficients.any():
+            log_spectrum += sfft.rfft(coefficients)
+        spectrum = np.exp(log_spectrum + const)
+        if hard_spectrum is not None:
+            spectrum *= hard_spectrum
+        if extra is not None:
+            offset, dense = extra
+            folded = np.bincount(
+                np.mod(offset + np.arange(dense.size), width), weights=dense, minlength=width
+            )
+            spectrum *= sfft.rfft(folded)
+        law = sfft.irfft(spectrum, width)
+        law = np.roll(law, -((window.start - shift) % width))
+        return law, truncation
+
+    def _add_series(
+        self,
+        coefficients: FloatArray,
+        theta: FloatArray,
+        need: FloatArray,
+        flip: NDArray[np.bool_],
+        width: int,
+    ) -> None:
+        """Add the log-series terms of every class with ``need > 0`` into ``coefficients``.
+
+        Round ``r`` adds ``(-1)^(r+1) theta^r / r`` of every class still
+        active; the active set is compacted at rounds 2, 3, 5, 8, ... (a class
+        may get a few terms more than it needs, never fewer).
+        """
+        top = int(need.max()) if need.size else 0
+        if top <= 0:
+            return
+        sel = np.flatnonzero(need > 0) if need.min() <= 0 else None
+        th = theta if sel is None else theta[sel]
+        key = self._key + self._nkeys * flip
+        cnt = self.count
+        if sel is not None:
+            key, need, cnt = key[sel], need[sel], cnt[sel]
+        pw = th.copy() if self._ones else th * cnt
+        positions: list[IntArray] = []
+        values: list[FloatArray] = []
+        signed = self._signed
+        checkpoint, following = 2, 3
+        for r in range(1, top + 1):
+            if r == checkpoint:
+                keep = np.flatnonzero(need >= r)
+                th, key, need, pw = th[keep], key[keep], need[keep], pw[keep]
+                checkpoint, following = following, checkpoint + following
+                top = int(need.max())
+            if r > 1:
+                pw *= th
+            if pw.size <= _RAGGED_FINISH:  # few rows left: finish them without rounds
+                self._finish(positions, values, pw, th, key, need, r, width)
+                break
+            sums = np.bincount(key, weights=pw, minlength=2 * self._nkeys)
+            positions.append(np.mod(signed * r, width))
+            values.append(sums * ((1.0 if r % 2 == 1 else -1.0) / r))
+        coefficients += np.bincount(
+            np.concatenate(positions), weights=np.concatenate(values), minlength=width
+        )
+
+    def _finish(
+        self,
+        positions: list[IntArray],
+        values: list[FloatArray],
+        pw: FloatArray,
+        th: FloatArray,
+        key: IntArray,
+        need: FloatArray,
+        r: int,
+        width: int,
+    ) -> None:
+        """Terms ``r .. need`` of the remaining rows (``pw`` holds ``count * theta^r``).
+
+        Rows are sorted by need and taken in blocks whose matrices (rows x
+        terms) stay near ``2^18`` numbers; each block uses its largest need.
+        """
+        order = np.argsort(-need, kind="stable")
+        pw, th, key, need = pw[order], th[order], key[order], need[order]
+        signed = self._signed[key]
+        a = 0
+        while a < pw.size:
+            cols = max(int(need[a]) - r + 1, 1)
+            half = int(np.searchsorted(-need, -(need[a] + r) / 2.0, side="right"))
+            b = min(pw.size, a + max(1, _MATRIX_FINISH // cols), max(half, a + 1))
+            ratio = np.broadcast_to(th[a:b, None], (b - a, cols)).copy()
+            ratio[:, 0] = pw[a:b]
+            powers = np.cumprod(ratio, axis=1)  # count * theta^(r + j)
+            r_all = np.arange(r, r + cols)
+            weight = np.where(r_all % 2 == 1, 1.0, -1.0) / r_all
+            positions.append(np.mod(signed[a:b, None] * r_all[None, :], width).ravel())
+            values.append((powers * weight[None, :]).ravel())
+            a = b
+
+    @staticmethod
+    def _hard_spectrum(
+        p: FloatArray, k: IntArray, count: FloatArray, width: int
+    ) -> NDArray[np.complex128]:
+        """``prod (1 - p + p w^k)^count`` at the frequencies ``w`` of the window."""
+        freq = np.arange(width // 2 + 1)
+        roots = np.exp((-2j * np.pi / width) * np.arange(width))
+        out = np.ones(freq.size, dtype=complex)
+        step = max(1, (1 << 20) // freq.size)
+        integral = bool(np.all(count == 1.0))
+        for a in range(0, p.size, step):
+            pp = p[a : a + step, None]
+            term = (1.0 - pp) + pp * roots[np.mod(k[a : a + step, None] * freq[None, :], width)]
+            if not integral:
+                term = term ** count[a : a + step, None]
+            out *= np.prod(term, axis=0)
+        return out
+
+
 def grid_law(
     k: IntArray,
     p: FloatArray,
@@ -330,27 +519,8 @@ def grid_law(
         Bound on the dropped series terms (absolute error of ``log G``).
 
     """
-    width = window.width
-    count = np.ones(k.size) if count is None else np.asarray(count, dtype=float)
-    coefficients, const, shift, direct, truncation = _log_coefficients(
-        k, p, count, width, tolerance, HARD_ORDER
-    )
-    if coefficients is not None:
-        spectrum = np.exp(sfft.rfft(coefficients) + const)
-    else:
-        spectrum = np.full(width // 2 + 1, np.exp(const), dtype=complex)
-    laws = bernoulli_sums(k[direct], p[direct], count[direct]) if direct.size else []
-    if extra is not None:
-        laws.append(extra)
-    if laws:
-        offset, dense = product_law([(off, law[None, :]) for off, law in laws])
-        folded = np.bincount(
-            np.mod(offset + np.arange(dense.shape[1]), width), weights=dense[0], minlength=width
-        )
-        spectrum *= sfft.rfft(folded)
-    law = sfft.irfft(spectrum, width)
-    law = np.roll(law, -((window.start - shift) % width))
-    return law, truncation
+    kernel = SeriesKernel(k, count, tolerance=tolerance)
+    return kernel.law(kernel.node(p), window, extra)
 
 
 class AtomConvolution:

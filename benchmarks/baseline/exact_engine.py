@@ -51,9 +51,6 @@ import numpy as np
 from numpy.typing import NDArray
 from scipy.special import ndtr, ndtri
 
-from debtsim._typing import FloatArray
-from debtsim.distribution import LossDistribution
-from debtsim.engines.base import Engine, ProgressHook
 from baseline.exact_loss_grid import (
     SERIES_TOLERANCE,
     WINDOW_TAIL,
@@ -63,9 +60,12 @@ from baseline.exact_loss_grid import (
     place_window,
     product_law,
 )
+from baseline.linked_group_law import MAX_GROUP_SIZE, group_law
+from debtsim._typing import FloatArray
+from debtsim.distribution import LossDistribution
+from debtsim.engines.base import Engine, ProgressHook
 from debtsim.errors import EngineRefusedError
 from debtsim.model.factor_grid import FactorGrid, adaptive_grid
-from baseline.linked_group_law import MAX_GROUP_SIZE, group_law
 from debtsim.model.specification import LinkedFactorModel, conditional_default_probability
 
 __all__ = ["ExactEngine"]

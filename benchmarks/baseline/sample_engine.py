@@ -74,9 +74,6 @@ import numpy as np
 from numpy.polynomial import Chebyshev
 from scipy.special import ndtr
 
-from debtsim._typing import FloatArray
-from debtsim.distribution import LossDistribution
-from debtsim.engines.base import Engine, ProgressHook
 from baseline.scenario_draws import (
     BLOCK,
     CascadeSampler,
@@ -87,6 +84,9 @@ from baseline.scenario_draws import (
     exact_log_normaliser,
     thresholds,
 )
+from debtsim._typing import FloatArray
+from debtsim.distribution import LossDistribution
+from debtsim.engines.base import Engine, ProgressHook
 from debtsim.model.specification import LinkedFactorModel
 from debtsim.risk import level_key, value_at_risk, weighted_sample_measures
 

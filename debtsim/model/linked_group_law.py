@@ -37,10 +37,12 @@ from scipy import sparse
 
 from debtsim._typing import FloatArray, IntArray
 
-__all__ = ["MAX_GROUP_SIZE", "group_law", "seed_probability"]
+__all__ = ["LARGEST_GROUP", "MAX_GROUP_SIZE", "group_law", "seed_probability"]
 
-#: Largest strongly connected group handled exactly (3^18 ~ 3.9e8 subset pairs).
-MAX_GROUP_SIZE = 18
+#: Largest strongly connected group whose law is computed (3^18 ~ 3.9e8 subset pairs).
+LARGEST_GROUP = 18
+#: Largest such group the circuit engine loads jointly (its multiplexers grow with it).
+MAX_GROUP_SIZE = 14
 #: Elements of the largest temporary array (pairs times batch) per step.
 _CHUNK_ELEMENTS = 1 << 22
 #: Groups up to this size keep their cut matrices cached between calls.
@@ -189,8 +191,8 @@ def group_law(
     """
     seed = np.asarray(seed, dtype=float)
     s = seed.shape[-1]
-    if s > MAX_GROUP_SIZE:
-        raise ValueError(f"a group of {s} mutually lending obligors exceeds {MAX_GROUP_SIZE}")
+    if s > LARGEST_GROUP:
+        raise ValueError(f"a group of {s} mutually lending obligors exceeds {LARGEST_GROUP}")
     batch = seed.shape[:-1]
     flat = seed.reshape(-1, s)
     full = 1 << s

@@ -7,7 +7,7 @@ import itertools
 import numpy as np
 import pytest
 
-from debtsim.model.linked_group_law import MAX_GROUP_SIZE, group_law
+from debtsim.model.linked_group_law import LARGEST_GROUP, group_law
 from tests.model.group_law_oracle import group_law as oracle_group_law
 
 
@@ -87,6 +87,6 @@ def test_twelve_member_ring_matches_oracle_on_one_node() -> None:
 
 def test_limit_is_eighteen() -> None:
     """Groups up to 18 members are accepted; larger ones are refused with a clear error."""
-    assert MAX_GROUP_SIZE == 18
+    assert LARGEST_GROUP == 18
     with pytest.raises(ValueError, match="exceeds 18"):
         group_law(np.full(19, 0.01), [])

@@ -65,7 +65,7 @@ from debtsim.engines.exact.loss_grid import (
 )
 from debtsim.errors import EngineRefusedError
 from debtsim.model.factor_grid import FactorGrid, adaptive_grid
-from debtsim.model.linked_group_law import MAX_GROUP_SIZE, group_law
+from debtsim.model.linked_group_law import LARGEST_GROUP, group_law
 from debtsim.model.specification import LinkedFactorModel, conditional_default_probability
 
 __all__ = ["ExactEngine"]
@@ -183,11 +183,11 @@ class ExactEngine(Engine):
                 f"(2^size joint states); use --engine sample"
             )
         for part in model.strong_components:
-            if part.size > MAX_GROUP_SIZE:
+            if part.size > LARGEST_GROUP:
                 names = ", ".join(model.ids[i] for i in part[:3])
                 return (
                     f"a cycle of {part.size} mutually lending obligors ({names}, ...) exceeds "
-                    f"the exact engine's limit of {MAX_GROUP_SIZE}; use --engine sample"
+                    f"the exact engine's limit of {LARGEST_GROUP}; use --engine sample"
                 )
         return None
 
@@ -730,7 +730,8 @@ def _all_group_laws(
         order = np.argsort(inverse, kind="stable")
         starts = np.flatnonzero(np.r_[True, np.diff(inverse[order]) != 0])
         merged = np.zeros((n_nodes, uniq.size))
-        chunk = max(1, (1 << 22) >> size)
+        # big groups take many nodes per call: their cut matrices are built once per call
+        chunk = max(1, (1 << 22) >> size) if size <= 14 else max(1, (1 << 25) >> size)
         for a in range(0, n_nodes, chunk):
             z = grid.nodes[a : a + chunk]
             own = conditional_default_probability(

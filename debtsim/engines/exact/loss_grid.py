@@ -14,17 +14,19 @@ grid points placed around the conditional mean) through its logarithm::
     log(1 - p + p x^k) = log(p) + k log x + sum_r (-1)^(r+1) theta^r x^(-r k) / r,
     theta = (1 - p) / p                                     (p > 1/2)
 
-The series coefficients of all obligors are summed into one array of length
-``W`` (one ``bincount``), so a node costs ``sum_i R_i`` scattered terms plus
-one real FFT pair, however wide the window; ``R_i`` is the number of terms
-obligor *i* needs for the requested accuracy (about 10 for a 1% PD).
-Obligors too close to ``p = 1/2`` for the series to converge quickly are
-summed exactly instead (binomial-type laws per distinct loss, see
-:func:`bernoulli_sums`); linked groups enter as their exact joint loss laws.
-Both are convolved together (:func:`product_law`), folded onto the window
-and multiplied in on the same roots of unity.  This is the recursion-free
-form of the one-factor loss algorithm of Andersen, Sidenius & Basu (Risk,
-2003).
+The work is prepared once per run (:class:`SeriesKernel`): classes are
+grouped by their grid loss ``k``, so round ``r`` of the series needs only the
+power sums ``sum count * theta^r`` per distinct ``k`` (one ``bincount``), placed
+at ``+-r k`` modulo ``W``; a node costs ``sum_i R_i`` multiply-adds plus one
+real FFT pair, however wide the window.  ``R_i``, the number of terms obligor
+*i* needs, follows from the truncation bound ``theta^(R+1) / ((R+1)(1 -
+theta)) <= tolerance / n`` (about 10 for a 1% PD).  Obligors within about 0.1%
+of ``p = 1/2``, where the series converges slowly, are multiplied in exactly
+as ``1 - p + p w^k`` at the window's frequencies ``w``; link groups enter as
+their exact joint loss laws, convolved together (:func:`product_law`),
+folded onto the window and multiplied in on the same roots of unity.  This
+is the recursion-free form of the one-factor loss algorithm of Andersen,
+Sidenius & Basu (Risk, 2003).
 
 *Atoms.*  For small books the support is kept exactly: a sorted array of
 distinct loss values, built once (it does not depend on the factor), with
@@ -51,7 +53,6 @@ __all__ = [
     "SeriesKernel",
     "WINDOW_TAIL",
     "Window",
-    "bernoulli_sums",
     "bernstein_halfwidth",
     "grid_law",
     "product_law",
@@ -138,53 +139,6 @@ def place_window(
     return Window(max(start, 0), width)
 
 
-def bernoulli_sums(
-    k: IntArray, p: FloatArray, count: FloatArray
-) -> list[tuple[int, FloatArray]]:
-    """Exact laws of sums of independent Bernoulli losses, one per distinct loss.
-
-    For the classes sharing a grid loss ``k`` the number of defaults has a
-    (Poisson-)binomial law on ``0 .. m``; it is obtained exactly from its
-    characteristic function at the ``m + 1`` roots of unity, then spread on
-    the multiples of ``k``.  Used for obligors whose ``p`` is too close to
-    1/2 for the log-series to converge quickly.
-
-    Parameters
-    ----------
-    k : ndarray of int
-        Grid loss of each class.
-    p : ndarray
-        Default probability of the class.
-    count : ndarray
-        Number of identical obligors in the class.
-
-    Returns
-    -------
-    list of (offset, probabilities)
-        One law per distinct ``k``: value ``offset + t`` with probability
-        ``probabilities[t]`` (offset is 0).
-
-    """
-    out: list[tuple[int, FloatArray]] = []
-    for kk in np.unique(k).tolist():
-        sel = k == kk
-        pp = p[sel]
-        cc = count[sel]
-        m = int(round(float(cc.sum())))
-        t = np.arange(m + 1)
-        root = np.exp((-2j * np.pi / (m + 1)) * t)
-        factors = 1.0 - pp[:, None] + pp[:, None] * root[None, :]
-        single = cc == 1.0
-        values = np.prod(factors[single], axis=0) if single.any() else np.ones(m + 1, complex)
-        for row in np.flatnonzero(~single).tolist():
-            values *= factors[row] ** cc[row]
-        pmf = np.fft.ifft(values).real
-        dense = np.zeros(m * kk + 1)
-        dense[::kk] = pmf
-        out.append((0, dense))
-    return out
-
-
 def product_law(laws: list[tuple[int, FloatArray]]) -> tuple[int, FloatArray]:
     """Law of a sum of independent grid variables, for a batch of nodes.
 
@@ -249,11 +203,11 @@ class SeriesKernel:
     ``q = min(p, 1 - p)`` and ``theta = q / (1 - q)``, round ``r`` adds the
     power sums ``sum count * theta^r`` of all classes sharing a grid loss
     (and a side of ``p = 1/2``) in one ``bincount``, then places the few
-    distinct sums at ``+-r k`` on the window.  Classes are sorted by the
-    number of terms they need, so round ``r`` touches only the prefix still
-    active; the last few long rows are finished as one matrix.  A class
-    needing more than ``hard_order`` terms (``p`` within about 1% of 1/2)
-    enters exactly: ``count * log(1 - p + p w^k)`` on the window's
+    distinct sums at ``+-r k`` on the window.  The active set shrinks as
+    classes reach the number of terms they need; the last few thousand
+    classes are finished as matrices (classes x remaining terms).  A class
+    needing more than ``hard_order`` terms (``p`` within about 0.1% of 1/2)
+    is multiplied in exactly: ``(1 - p + p w^k)^count`` on the window's
     frequencies ``w``.
 
     Truncation: class ``c`` stops after ``R_c`` terms with

@@ -79,7 +79,7 @@ _SHARP_REGION_TAIL = 1e-6
 #: Node-law values below this fraction of the node's largest are FFT round-off.
 _NOISE_FLOOR = 1e-15
 #: Loosest series tolerance of one node (nodes of tiny weight; see _run_grid).
-_LOOSEST = 1e-8
+_LOOSEST = 1e-6
 #: Books with more loss-bearing obligors than this never keep exact loss values.
 _ATOMS_MAX_OBLIGORS = 40
 #: Relative tolerance for recognising losses as multiples of a common unit.

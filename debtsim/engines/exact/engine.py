@@ -605,7 +605,7 @@ def _run_grid(
     cls_pr = cls[:, 0]
     cls_k = cls[:, 1].astype(np.int64)
     cls_count = cls_count.astype(float)
-    kernel = SeriesKernel(cls_k, cls_count)
+    kernel = SeriesKernel(cls_k, np.asarray(cls_count, dtype=np.float64))
     # all-different books: one class per (PD, R) pair, in pair order, no gather needed
     identity = cls_pr.size == pr_unique.shape[0] and bool(
         np.array_equal(cls_pr, np.arange(cls_pr.size))

@@ -380,7 +380,7 @@ class SeriesKernel:
                 break
             sums = np.bincount(key, weights=pw, minlength=2 * self._nkeys)
             positions.append(np.mod(signed * r, width))
-            values.append(sums * ((1.0 if r % 2 == 1 else -1.0) / r))
+            values.append(np.asarray(sums * ((1.0 if r % 2 == 1 else -1.0) / r), dtype=np.float64))
         coefficients += np.bincount(
             np.concatenate(positions), weights=np.concatenate(values), minlength=width
         )

@@ -68,7 +68,7 @@ WINDOW_TAIL = 1e-16
 #: Series work (classes x terms) below which the last rounds run as one matrix.
 _MATRIX_FINISH = 1 << 18
 #: Below this many active classes the remaining series terms are built as matrices.
-_RAGGED_FINISH = 4096
+_RAGGED_FINISH = 512
 #: Classes needing more series terms than this are multiplied in exactly instead.
 HARD_ORDER = 8192
 

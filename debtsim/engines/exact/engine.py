@@ -622,12 +622,13 @@ def _run_grid(
     exp_l = np.zeros(n_nodes)  # E[L | z] in currency
     truncation = 0.0
     widest = 0
+    pr_law = _ConditionalPD(pr_unique[:, 0], pr_unique[:, 1])
     # keep the (nodes x classes) probability block near 2^21 numbers (16 MB)
     batch = max(1, min(batch, (1 << 21) // max(pr_unique.shape[0], 1)))
     for start in range(0, n_nodes, batch):
         z = nodes[start : start + batch]
         w = weights[start : start + batch]
-        p_pr = conditional_default_probability(pr_unique[:, 0], pr_unique[:, 1], z)
+        p_pr = pr_law(z)
         pr_probability += w @ p_pr
         if groups:
             dense = []
@@ -684,6 +685,30 @@ def _run_grid(
         model, plan, unit, exp_k, exp_l, nodes, truncation, widest, grid
     )
     return losses, probs, default_probability, diagnostics, unit
+
+
+class _ConditionalPD:
+    """``conditional_default_probability`` with its per-class constants computed once.
+
+    A million-obligor book evaluates the conditional PDs a few nodes at a
+    time; recomputing ``Phi^-1(PD)`` on every call would cost as much as the
+    call itself.  Same formula, same special cases (PD 1 gives 1).
+    """
+
+    def __init__(self, pd: FloatArray, correlation: FloatArray) -> None:
+        with np.errstate(over="ignore", invalid="ignore"):
+            self._threshold = ndtri(np.clip(pd, 0.0, 1.0))
+        self._sr = np.sqrt(correlation)
+        self._s1r = np.sqrt(1.0 - correlation)
+        self._sure = np.flatnonzero(pd >= 1.0)
+        self._never = np.flatnonzero(pd <= 0.0)
+
+    def __call__(self, z: FloatArray) -> FloatArray:
+        x = (self._threshold[None, :] - self._sr[None, :] * z[:, None]) / self._s1r[None, :]
+        p = ndtr(x)
+        p[:, self._sure] = 1.0
+        p[:, self._never] = 0.0
+        return np.asarray(p, dtype=np.float64)
 
 
 @dataclass

@@ -28,7 +28,7 @@ evaluated for every factor node at once.  The cut factor
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from functools import lru_cache
 
@@ -130,11 +130,10 @@ def _cut(inflow: FloatArray, u: IntArray, rest: IntArray) -> FloatArray:
     return out
 
 
-def _build_levels(s: int, links: tuple[tuple[int, int, float], ...]) -> list[_Level]:
+def _build_levels(s: int, links: tuple[tuple[int, int, float], ...]) -> Iterator[_Level]:
     """Build the recursion's sparse cut matrices, level by level (node-independent)."""
     inflow = _inflow_tables(s, links)
     full = 1 << s
-    levels: list[_Level] = []
     for m, targets in enumerate(_level_masks(s)):
         if m == 0:
             continue
@@ -147,17 +146,16 @@ def _build_levels(s: int, links: tuple[tuple[int, int, float], ...]) -> list[_Le
                 (_cut(inflow, u, rest).ravel(), u.ravel(), np.arange(t.size + 1) * per_target),
                 shape=(t.size, full),
             )
-            levels.append(_Level(t, matrix))
-    return levels
+            yield _Level(t, matrix)
 
 
 @lru_cache(maxsize=4)
 def _cached_levels(s: int, links: tuple[tuple[int, int, float], ...]) -> list[_Level]:
-    return _build_levels(s, links)
+    return list(_build_levels(s, links))
 
 
-def _levels(s: int, links: tuple[tuple[int, int, float], ...]) -> list[_Level]:
-    """Cut matrices, cached for groups whose matrices are small (s <= 14: 4.8e6 entries)."""
+def _levels(s: int, links: tuple[tuple[int, int, float], ...]) -> Iterable[_Level]:
+    """Cut matrices, cached for small groups (s <= 14: 4.8e6 entries), else built as used."""
     return _cached_levels(s, links) if s <= _CACHE_MAX_SIZE else _build_levels(s, links)
 
 
@@ -213,7 +211,7 @@ def group_law(
     return np.ascontiguousarray(law.T).reshape(batch + (full,))
 
 
-def _recursion_sparse(levels: list[_Level], no_seed: FloatArray) -> FloatArray:
+def _recursion_sparse(levels: Iterable[_Level], no_seed: FloatArray) -> FloatArray:
     """``g`` for every state (rows) and column, by the sparse form of the recursion."""
     ratio = np.zeros(no_seed.shape)  # g / n, filled level by level
     ratio[0] = 1.0

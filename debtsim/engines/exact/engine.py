@@ -544,6 +544,12 @@ def _run_atoms(
     default_probability = np.zeros(model.n_obligors)
     nodes, weights = grid.nodes, grid.weights
     step = max(1, min(batch, (1 << 22) // max(support_size, 1)))
+    # groups above 14 members: one call for all nodes (their cut matrices are built per call)
+    big = {
+        gi: _group_state_law(g, model.conditional_pd(nodes)[:, g.members])
+        for gi, g in enumerate(groups)
+        if g.members.size > 14
+    }
     for start in range(0, len(grid), step):
         z = nodes[start : start + step]
         w = weights[start : start + step]
@@ -552,8 +558,11 @@ def _run_atoms(
         item_laws: list[FloatArray] = [
             np.stack([1.0 - own[:, i], own[:, i]], axis=1) for i in lossy_single.tolist()
         ]
-        for g in groups:
-            law = _group_state_law(g, own[:, g.members])
+        for gi, g in enumerate(groups):
+            if gi in big:
+                law = big[gi][start : start + step]
+            else:
+                law = _group_state_law(g, own[:, g.members])
             item_laws.append(law)
             default_probability[g.members] += w @ (law @ _state_bits(g.members.size))
         probs = plan.atoms.apply(item_laws) if item_laws else np.ones((z.size, 1))

@@ -765,7 +765,7 @@ def _all_group_laws(
         starts = np.flatnonzero(np.r_[True, np.diff(inverse[order]) != 0])
         merged = np.zeros((n_nodes, uniq.size))
         # big groups take many nodes per call: their cut matrices are built once per call
-        chunk = max(1, (1 << 22) >> size) if size <= 14 else max(1, (1 << 25) >> size)
+        chunk = max(1, (1 << 22) >> size) if size <= 14 else max(1, (1 << 24) >> size)
         for a in range(0, n_nodes, chunk):
             z = grid.nodes[a : a + chunk]
             own = conditional_default_probability(

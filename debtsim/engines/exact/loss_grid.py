@@ -22,7 +22,7 @@ real FFT pair, however wide the window.  ``R_i``, the number of terms obligor
 *i* needs, follows from the truncation bound ``theta^(R+1) / ((R+1)(1 -
 theta)) <= tolerance / n`` (about 10 for a 1% PD).  Obligors within about 0.1%
 of ``p = 1/2``, where the series converges slowly, are multiplied in exactly
-as ``1 - p + p w^k`` at the window's frequencies ``w``; link groups enter as
+as ``1 - p + p w^k`` at the window's frequencies ``w``; linked groups enter as
 their exact joint loss laws, convolved together (:func:`product_law`),
 folded onto the window and multiplied in on the same roots of unity.  This
 is the recursion-free form of the one-factor loss algorithm of Andersen,

@@ -2,10 +2,12 @@
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 from numpy.typing import NDArray
 
-__all__ = ["BoolArray", "FloatArray", "IntArray"]
+__all__ = ["BoolArray", "FloatArray", "IntArray", "SignedArray"]
 
 #: Float64 array: probabilities, losses, factor nodes.
 FloatArray = NDArray[np.float64]
@@ -13,3 +15,5 @@ FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
 #: Boolean array: default indicators, masks.
 BoolArray = NDArray[np.bool_]
+#: Signed integer array of either width (int32 where indices fit, else int64).
+SignedArray = NDArray[np.signedinteger[Any]]

@@ -40,13 +40,14 @@ import math
 from collections.abc import Callable, Iterator
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 from numpy.polynomial import Chebyshev
 from numpy.typing import NDArray
 from scipy.special import expit, logit, logsumexp, ndtr, ndtri
 
-from debtsim._typing import FloatArray
+from debtsim._typing import FloatArray, SignedArray
 from debtsim.model.specification import LinkedFactorModel
 
 __all__ = [
@@ -503,14 +504,16 @@ class CascadeSampler:
         """
         n = self._n
         cells = rows * n
-        itype = np.int32 if cells < 2**31 and self._m < 2**31 else np.int64
+        itype: type[np.signedinteger[Any]] = (
+            np.int32 if cells < 2**31 and self._m < 2**31 else np.int64
+        )
         defaulted = np.zeros(cells, dtype=bool)
         stamp = np.empty(cells, dtype=itype)
-        own = (own_r * n + own_c).astype(itype)
+        own: SignedArray = (own_r * n + own_c).astype(itype)
         defaulted[own] = True
-        outdeg = self._outdeg.astype(itype)
-        indptr = self._indptr.astype(itype)
-        creditor = self._out_creditor.astype(itype)
+        outdeg: SignedArray = self._outdeg.astype(itype)
+        indptr: SignedArray = self._indptr.astype(itype)
+        creditor: SignedArray = self._out_creditor.astype(itype)
         frontier = own[outdeg[own_c] > 0]
         found: list[IntArray] = []
         # per-scenario and per-link 64-bit keys; liveness = hash(row key + link key)

@@ -107,6 +107,10 @@ class Allocation:
     var_contagion, expected_shortfall_contagion, economic_capital_contagion :
         ndarray, shape (levels, n)
         The part carried by defaults dragged in along links.
+    standard_error : Allocation or None
+        Standard error of every figure (sampling engines), else None.
+    diagnostics : dict
+        Engine notes on accuracy (e.g. ``var_window_sensitivity``).
     """
 
     levels: tuple[float, ...]
@@ -120,6 +124,8 @@ class Allocation:
     var_contagion: FloatArray
     expected_shortfall_contagion: FloatArray
     economic_capital_contagion: FloatArray
+    standard_error: Allocation | None = None
+    diagnostics: dict[str, Any] = field(default_factory=dict)
 
     def columns(self) -> dict[str, FloatArray]:
         """Columns of ``contributions.csv`` after ``id`` and ``sector``, in order."""
@@ -212,6 +218,7 @@ def allocate(m: TailMoments) -> Allocation:
         var_contagion=var - var_o,
         expected_shortfall_contagion=es - es_o,
         economic_capital_contagion=ec - ec_o,
+        diagnostics=dict(m.diagnostics),
     )
 
 

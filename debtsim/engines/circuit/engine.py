@@ -195,6 +195,9 @@ class CircuitEngine(Engine):
         self.max_qubits = max_qubits
         self.factor_grid = factor_grid
         self.sector_grid = sector_grid
+        #: Probabilities of the ``2**n`` final-default patterns of the last exact run
+        #: (bit ``i`` is obligor ``i``), kept for risk contributions.
+        self.last_pattern_law: FloatArray | None = None
 
     def refusal(self, model: LinkedFactorModel) -> str | None:
         """Why the circuit engine cannot run ``model``, or None when it can."""
@@ -338,6 +341,7 @@ class CircuitEngine(Engine):
         if not measure:
             result = _checked(simulator.run(qc, shots=1).result())
             probs = np.asarray(result.data(0)["obligors"], dtype=float)
+            self.last_pattern_law = probs
             if progress is not None:
                 progress(2, steps)
             mass = float(probs.sum())

@@ -39,7 +39,7 @@ from __future__ import annotations
 import math
 from collections.abc import Callable, Iterator
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -53,6 +53,7 @@ from debtsim.model.specification import LinkedFactorModel
 __all__ = [
     "BLOCK",
     "CascadeSampler",
+    "ChunkDefaults",
     "Proposal",
     "ScenarioSet",
     "Tilt",
@@ -235,6 +236,9 @@ class ScenarioSet:
         ``sum_s weights_s * D_{s,i}``: weighted count of final defaults.
     default_weight_sq : ndarray, shape (n,)
         ``sum_s weights_s^2 * D_{s,i}``, for standard errors.
+    observed : tuple
+        What the sampler's observer returned for each chunk, in scenario order
+        (empty without an observer).
 
     """
 
@@ -243,11 +247,42 @@ class ScenarioSet:
     factor: FloatArray
     default_weight: FloatArray
     default_weight_sq: FloatArray
+    observed: tuple[object, ...] = ()
 
     @property
     def samples(self) -> int:
         """Number of scenarios."""
         return int(self.losses.shape[0])
+
+
+@dataclass(frozen=True, eq=False)
+class ChunkDefaults:
+    """Final defaults of one chunk of scenarios, as sparse (scenario, obligor) pairs.
+
+    Attributes
+    ----------
+    first : int
+        Index of the chunk's first scenario in the run.
+    losses, weights : ndarray, shape (rows,)
+        Loss and weight of each scenario of the chunk.
+    own_rows, own_cols : ndarray of int
+        Own defaults: scenario (within the chunk) and obligor.
+    contagion_rows, contagion_cols : ndarray of int
+        Defaults reached only along live links.
+
+    """
+
+    first: int
+    losses: FloatArray
+    weights: FloatArray
+    own_rows: IntArray
+    own_cols: IntArray
+    contagion_rows: IntArray
+    contagion_cols: IntArray
+
+
+#: Called on every chunk's defaults; what it returns is kept in scenario order.
+Observer = Callable[[ChunkDefaults], object]
 
 
 @dataclass
@@ -257,6 +292,7 @@ class _BlockResult:
     factor: FloatArray
     default_weight: FloatArray
     default_weight_sq: FloatArray
+    observed: list[object] = field(default_factory=list)
 
 
 class CascadeSampler:
@@ -272,6 +308,9 @@ class CascadeSampler:
         picks about 2^19 scenario-obligor pairs.  Does not change the result.
     workers : int
         Threads working on blocks in parallel.  Does not change the result.
+    observe : callable, optional
+        Called with every chunk's :class:`ChunkDefaults` (from worker
+        threads); its results are kept in ``ScenarioSet.observed``.
 
     """
 
@@ -282,7 +321,9 @@ class CascadeSampler:
         *,
         chunk: int | None = None,
         workers: int = 1,
+        observe: Observer | None = None,
     ) -> None:
+        self._observe = observe
         n = model.n_obligors
         self._n = n
         self._proposal = proposal
@@ -351,6 +392,7 @@ class CascadeSampler:
             factor=np.concatenate([r.factor for r in results]),
             default_weight=np.sum([r.default_weight for r in results], axis=0),
             default_weight_sq=np.sum([r.default_weight_sq for r in results], axis=0),
+            observed=tuple(x for r in results for x in r.observed),
         )
 
     # ----------------------------------------------------------------- helpers
@@ -405,6 +447,7 @@ class CascadeSampler:
         weights = np.ones(rows)
         dw = np.zeros(n)
         dw2 = np.zeros(n)
+        observed: list[object] = []
         for lo in range(0, rows, chunk):
             hi = min(rows, lo + chunk)
             r = hi - lo
@@ -436,10 +479,17 @@ class CascadeSampler:
                 dw2 += np.bincount(cas_c, weights=w[cas_r] ** 2, minlength=n)
             else:
                 losses[lo:hi] = own_loss
+                cas_r = cas_c = np.zeros(0, dtype=np.int64)
+            if self._observe is not None:
+                observed.append(self._observe(ChunkDefaults(
+                    first=start + lo, losses=losses[lo:hi], weights=w, own_rows=own_r,
+                    own_cols=own_c, contagion_rows=cas_r, contagion_cols=cas_c,
+                )))
             dw += np.bincount(own_c, weights=w[own_r], minlength=n)
             dw2 += np.bincount(own_c, weights=w[own_r] ** 2, minlength=n)
         return _BlockResult(
-            losses=losses, weights=weights, factor=z, default_weight=dw, default_weight_sq=dw2
+            losses=losses, weights=weights, factor=z, default_weight=dw, default_weight_sq=dw2,
+            observed=observed,
         )
 
     def _log_normaliser(self, z: FloatArray, theta: FloatArray, tilt: Tilt) -> FloatArray:

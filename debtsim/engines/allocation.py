@@ -1,0 +1,49 @@
+"""Run an engine and allocate its risk to the obligors, whichever engine it is."""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+from debtsim.contributions import Allocation, allocate
+from debtsim.distribution import LossDistribution
+from debtsim.engines.base import Engine, ProgressHook
+from debtsim.model.specification import LinkedFactorModel
+
+__all__ = ["run_with_contributions"]
+
+
+def run_with_contributions(
+    engine: Engine,
+    model: LinkedFactorModel,
+    levels: Sequence[float],
+    *,
+    progress: ProgressHook | None = None,
+) -> tuple[LossDistribution, Allocation]:
+    """Compute the loss law of ``model`` and every obligor's risk contributions.
+
+    ``exact`` and shot-free ``circuit`` are exact on their factor nodes;
+    ``sample`` estimates from its scenarios with batch-means standard errors.
+
+    Raises
+    ------
+    ValueError
+        For an engine without contributions (the circuit with shots).
+    """
+    from debtsim.engines.circuit.engine import CircuitEngine
+    from debtsim.engines.exact.engine import ExactEngine
+    from debtsim.engines.sample.engine import SampleEngine
+
+    if isinstance(engine, SampleEngine):
+        from debtsim.engines.sample.contributions import sample_contributions
+
+        return sample_contributions(engine, model, levels, progress=progress)
+    dist = engine.run(model, progress=progress)
+    if isinstance(engine, ExactEngine):
+        from debtsim.engines.exact.contributions import exact_moments
+
+        return dist, allocate(exact_moments(engine, model, dist, levels))
+    if isinstance(engine, CircuitEngine) and engine.shots is None:
+        from debtsim.engines.circuit.contributions import circuit_moments
+
+        return dist, allocate(circuit_moments(engine, model, dist, levels))
+    raise ValueError(f"the {engine.name} engine does not compute risk contributions")

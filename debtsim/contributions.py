@@ -33,14 +33,21 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+import pandas as pd
 from numpy.typing import NDArray
+
+from debtsim.book.records import Book
+from debtsim.irb import irb_capital_amounts
 
 __all__ = [
     "Allocation",
     "TailMoments",
     "allocate",
     "contribution_columns",
+    "contribution_summary",
+    "contribution_table",
     "herfindahl",
+    "sector_table",
 ]
 
 FloatArray = NDArray[np.float64]
@@ -247,3 +254,82 @@ def herfindahl(exposure: FloatArray, labels: Sequence[str] | None = None) -> flo
         ead = np.bincount(inverse.ravel(), weights=ead)
     share = ead / total
     return float(np.sum(share * share))
+
+
+def contribution_table(book: Book, allocation: Allocation) -> pd.DataFrame:
+    """One row per obligor: ``id, sector``, the measures, then ``irb_capital``.
+
+    Columns are those of ``contributions.csv`` (DESIGN.md "Risk
+    contributions"); ``irb_capital`` is the Basel II corporate IRB capital
+    ``K x EAD`` with each obligor's maturity (a yardstick, see :mod:`debtsim.irb`).
+    """
+    obligors = book.obligors
+    data: dict[str, Any] = {
+        "id": [o.id for o in obligors],
+        "sector": [o.sector for o in obligors],
+    }
+    data.update(allocation.columns())
+    data["irb_capital"] = irb_capital_amounts(
+        np.array([o.pd for o in obligors]),
+        np.array([o.lgd for o in obligors]),
+        np.array([o.ead for o in obligors]),
+        np.array([o.maturity for o in obligors]),
+    )
+    return pd.DataFrame(data)
+
+
+def sector_table(table: pd.DataFrame) -> pd.DataFrame:
+    """The obligor table summed by ``sector`` (sectors in order of first appearance)."""
+    out = table.drop(columns=["id"]).groupby("sector", sort=False).sum(numeric_only=True)
+    return out.reset_index()
+
+
+def contribution_summary(book: Book, allocation: Allocation, groups: Sequence[Sequence[int]]
+                         ) -> dict[str, Any]:
+    """The ``contributions`` block of ``summary.json``.
+
+    Parameters
+    ----------
+    book : Book
+    allocation : Allocation
+    groups : sequence of index sequences
+        Linked groups (weakly connected components of two or more obligors).
+
+    Returns
+    -------
+    dict
+        ``totals`` (each contribution column summed), ``contagion_share``
+        per measure (contagion part / total), ``by_linked_group`` (ids and
+        ES at the highest level with its contagion part), ``herfindahl``
+        (``name`` and ``sector``), ``irb_capital`` and, for sampling engines,
+        ``standard_error`` of the totals' parts is left to the CSV.
+    """
+    table = contribution_table(book, allocation)
+    numeric = table.drop(columns=["id", "sector"])
+    totals = {c: float(numeric[c].sum()) for c in numeric.columns}
+    share: dict[str, float | None] = {}
+    for c in numeric.columns:
+        if c.endswith("_contagion"):
+            whole = totals[c[: -len("_contagion")]]
+            share[c[: -len("_contagion")]] = totals[c] / whole if whole else None
+    top = f"expected_shortfall_{allocation.levels[-1]}" if allocation.levels else None
+    by_group = []
+    for members in groups:
+        idx = list(members)
+        entry: dict[str, Any] = {"obligors": [book.obligors[i].id for i in idx]}
+        if top is not None:
+            entry[top] = float(numeric[top].iloc[idx].sum())
+            entry[top + "_contagion"] = float(numeric[top + "_contagion"].iloc[idx].sum())
+        by_group.append(entry)
+    ead = np.array([o.ead for o in book.obligors])
+    return {
+        "totals": totals,
+        "contagion_share": share,
+        "by_linked_group": by_group,
+        "herfindahl": {
+            "name": herfindahl(ead),
+            "sector": herfindahl(ead, [o.sector for o in book.obligors]),
+        },
+        "irb_capital": totals["irb_capital"],
+        "diagnostics": {k: v for k, v in allocation.diagnostics.items()},
+    }

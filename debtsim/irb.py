@@ -20,7 +20,13 @@ from scipy.special import ndtri
 
 from debtsim.model.specification import conditional_default_probability
 
-__all__ = ["irb_capital", "irb_correlation", "irb_maturity_adjustment", "irb_risk_weight"]
+__all__ = [
+    "irb_capital",
+    "irb_capital_amounts",
+    "irb_correlation",
+    "irb_maturity_adjustment",
+    "irb_risk_weight",
+]
 
 
 def irb_correlation(pd: ArrayLike) -> NDArray[np.float64]:
@@ -33,18 +39,18 @@ def irb_correlation(pd: ArrayLike) -> NDArray[np.float64]:
     return 0.12 * w + 0.24 * (1.0 - w)
 
 
-def irb_maturity_adjustment(pd: ArrayLike, maturity: float = 2.5) -> NDArray[np.float64]:
+def irb_maturity_adjustment(pd: ArrayLike, maturity: ArrayLike = 2.5) -> NDArray[np.float64]:
     """``(1 + (M - 2.5) b) / (1 - 1.5 b)`` with ``b = (0.11852 - 0.05478 ln PD)^2``."""
     pd = np.asarray(pd, dtype=float)
     b = (0.11852 - 0.05478 * np.log(pd)) ** 2
-    return (1.0 + (maturity - 2.5) * b) / (1.0 - 1.5 * b)
+    return (1.0 + (np.asarray(maturity, dtype=float) - 2.5) * b) / (1.0 - 1.5 * b)
 
 
 def irb_capital(
     pd: ArrayLike,
     lgd: ArrayLike,
     *,
-    maturity: float = 2.5,
+    maturity: ArrayLike = 2.5,
     correlation: ArrayLike | None = None,
 ) -> NDArray[np.float64]:
     """Capital requirement ``K`` per unit of EAD under the corporate IRB formula.
@@ -53,8 +59,8 @@ def irb_capital(
     ----------
     pd, lgd : array_like
         Probability of default (0 < PD < 1) and loss given default.
-    maturity : float
-        Effective maturity in years.
+    maturity : float or array_like
+        Effective maturity in years (broadcast against ``pd``).
     correlation : array_like, optional
         Asset correlation; the supervisory corporate formula when omitted.
 
@@ -79,3 +85,27 @@ def irb_capital(
 def irb_risk_weight(pd: ArrayLike, lgd: ArrayLike, *, maturity: float = 2.5) -> NDArray[np.float64]:
     """Risk weight ``12.5 K`` (a fraction: 0.9232 means 92.32%)."""
     return 12.5 * irb_capital(pd, lgd, maturity=maturity)
+
+
+def irb_capital_amounts(
+    pd: ArrayLike, lgd: ArrayLike, ead: ArrayLike, maturity: ArrayLike = 2.5
+) -> NDArray[np.float64]:
+    """IRB capital in currency per obligor: ``K x EAD`` with each obligor's maturity.
+
+    Parameters
+    ----------
+    pd, lgd, ead, maturity : array_like, shape (n,)
+        Maturity in years (1 to 5, Basel II para. 320).
+
+    Returns
+    -------
+    ndarray, shape (n,)
+        0 where PD is 1 (a stressed certain default: its loss is expected, not capital).
+    """
+    pd = np.asarray(pd, dtype=float)
+    out = np.zeros(pd.shape)
+    live = pd < 1.0
+    if live.any():
+        m = np.broadcast_to(np.asarray(maturity, dtype=float), pd.shape)[live]
+        out[live] = irb_capital(pd[live], np.asarray(lgd, dtype=float)[live], maturity=m)
+    return out * np.asarray(ead, dtype=float)

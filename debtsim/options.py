@@ -101,6 +101,9 @@ class RunOptions:
         Confidence levels of VaR, ES and economic capital, sorted.
     copula : bool
         Also compute the same book without links (Gaussian copula).
+    contributions : bool
+        Also allocate the risk to the obligors (Euler contributions); not
+        available for the circuit engine with shots.
 
     Raises
     ------
@@ -114,6 +117,7 @@ class RunOptions:
     shots: int | None = None
     levels: tuple[float, ...] = field(default=DEFAULT_LEVELS)
     copula: bool = True
+    contributions: bool = True
 
     def __post_init__(self) -> None:
         if self.engine not in ENGINE_NAMES:

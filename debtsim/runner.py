@@ -18,8 +18,10 @@ import pandas as pd
 
 from debtsim.book.loader import OBLIGOR_FIELDS
 from debtsim.book.records import Book
+from debtsim.contributions import Allocation, contribution_table, sector_table
 from debtsim.distribution import LossDistribution
 from debtsim.engines import ProgressHook, choose_engine
+from debtsim.engines.allocation import run_with_contributions
 from debtsim.link_effects import obligor_contagion
 from debtsim.model.specification import LinkedFactorModel
 from debtsim.options import RunOptions
@@ -69,6 +71,9 @@ class RunResult:
         The same book without links (Gaussian copula); None when not asked.
     notes : tuple of str
         Model warnings for the reader (e.g. coarse factor nodes).
+    allocation : Allocation or None
+        Euler risk contributions of every obligor (None when not asked or
+        not available, i.e. the circuit engine with shots).
     """
 
     book: Book
@@ -81,6 +86,7 @@ class RunResult:
     copula_distribution: LossDistribution | None = None
     copula_measures: RiskMeasures | None = None
     notes: tuple[str, ...] = field(default=())
+    allocation: Allocation | None = None
 
     @property
     def diagnostics(self) -> Mapping[str, Any]:
@@ -91,6 +97,25 @@ class RunResult:
     def obligors(self) -> pd.DataFrame:
         """One row per obligor in book order, the columns of ``obligors.csv``."""
         return obligor_table(self.book, self.loss_distribution)
+
+    @cached_property
+    def contributions(self) -> pd.DataFrame | None:
+        """Risk contributions, one row per obligor: the columns of ``contributions.csv``.
+
+        ``id, sector, expected_loss, loss_std``, per level ``var_<a>,
+        expected_shortfall_<a>, economic_capital_<a>``, each measure again
+        with ``_contagion`` (the part carried by defaults along links), then
+        ``irb_capital``.  None when the run allocated nothing.
+        """
+        if self.allocation is None:
+            return None
+        return contribution_table(self.book, self.allocation)
+
+    @cached_property
+    def sector_contributions(self) -> pd.DataFrame | None:
+        """The contributions summed by sector: the columns of ``sectors.csv``."""
+        table = self.contributions
+        return None if table is None else sector_table(table)
 
     def write(self, out_dir: Path | str) -> Path:
         """Write ``summary.json``, the CSV files and ``report.html`` into ``out_dir``.
@@ -159,7 +184,14 @@ def run_book(
     options = options or RunOptions()
     model = LinkedFactorModel.from_book(book)
     choice = choose_engine(options.engine, model, options)
-    dist = choice.engine.run(model, progress=progress("model") if progress else None)
+    hook = progress("model") if progress else None
+    allocation: Allocation | None = None
+    if options.contributions and not (choice.engine.name == "circuit" and options.shots):
+        dist, allocation = run_with_contributions(
+            choice.engine, model, options.levels, progress=hook
+        )
+    else:
+        dist = choice.engine.run(model, progress=hook)
     copula_dist = copula_measures = None
     if options.copula:
         if model.n_links == 0:
@@ -180,6 +212,7 @@ def run_book(
         copula_distribution=copula_dist,
         copula_measures=copula_measures,
         notes=model_notes(dist),
+        allocation=allocation,
     )
 
 

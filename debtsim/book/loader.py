@@ -70,6 +70,7 @@ OBLIGOR_FIELDS: tuple[str, ...] = (
     "pd",
     "lgd",
     "asset_correlation",
+    "maturity",
 )
 #: Obligor fields that must be present.
 REQUIRED_OBLIGOR_FIELDS: tuple[str, ...] = ("id", "ead", "pd", "lgd", "asset_correlation")
@@ -220,6 +221,15 @@ def _correlation_test(x: float) -> str | None:
     return None
 
 
+#: Effective maturity (years) of an obligor that gives none: the Basel II foundation value.
+DEFAULT_MATURITY = 2.5
+
+
+def _maturity_test(x: float) -> str | None:
+    # Basel II (June 2006) para. 320: M is floored at one year and capped at five
+    return "must be between 1 and 5 (years)" if x < 1 or x > 5 else None
+
+
 def _amount_test(x: float) -> str | None:
     return "must be at least 0" if x < 0 else None
 
@@ -253,13 +263,22 @@ def _fast_obligor(cells: dict[str, str], line: int) -> Obligor | None:
         pd = float(cells["pd"])
         lgd = float(cells["lgd"])
         rho = float(cells["asset_correlation"])
+        text = cells.get("maturity", "").strip()
+        maturity = float(text) if text else DEFAULT_MATURITY
     except ValueError:
         return None
-    if ident and 0 < ead <= MAX_EAD and 0 < pd < 1 and 0 <= lgd <= 1 and 0 <= rho < 1:
+    if (
+        ident
+        and 0 < ead <= MAX_EAD
+        and 0 < pd < 1
+        and 0 <= lgd <= 1
+        and 0 <= rho < 1
+        and 1 <= maturity <= 5
+    ):
         name = cells.get("name", "").strip()
         sector = cells.get("sector", "").strip()
         if ident.isprintable() and "\x00" not in name + sector:
-            return Obligor(ident, ead, pd, lgd, rho, name, sector, line)
+            return Obligor(ident, ead, pd, lgd, rho, name, sector, maturity, line)
     return None
 
 
@@ -300,8 +319,13 @@ def _build_obligor(entry: _Entry, sink: ProblemSink) -> tuple[str | None, Obligo
     pd = _check_range(entry, "pd", sink, _pd_test)
     lgd = _check_range(entry, "lgd", sink, _unit_test)
     rho = _check_range(entry, "asset_correlation", sink, _correlation_test)
+    maturity: float | None = DEFAULT_MATURITY
+    raw_maturity = entry.fields.get("maturity")
+    if raw_maturity is not None and str(raw_maturity.value).strip() != "":
+        maturity = _check_range(entry, "maturity", sink, _maturity_test)
     if len(sink.problems) != before:
         return ident, None
+    assert maturity is not None
     assert ident is not None and ead is not None and pd is not None
     assert lgd is not None and rho is not None
     return ident, Obligor(
@@ -312,6 +336,7 @@ def _build_obligor(entry: _Entry, sink: ProblemSink) -> tuple[str | None, Obligo
         asset_correlation=rho,
         name=name,
         sector=sector,
+        maturity=maturity,
         line=entry.line,
     )
 

@@ -35,6 +35,9 @@ class Obligor:
         Loading ``R`` on the systemic factor, in [0, 1).
     name, sector : str
         Optional descriptive text.
+    maturity : float
+        Effective maturity in years, 1 to 5 (default 2.5); feeds only the
+        Basel II IRB yardstick.
     line : int or None
         Line of the record in its source file, for messages.
     """
@@ -46,6 +49,7 @@ class Obligor:
     asset_correlation: float
     name: str = ""
     sector: str = ""
+    maturity: float = 2.5
     line: int | None = field(default=None, compare=False)
 
 

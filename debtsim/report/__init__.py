@@ -38,7 +38,14 @@ __all__ = [
 ]
 
 #: Files every run writes, in the order they are written.
-OUTPUT_FILES = ("summary.json", "loss_distribution.csv", "obligors.csv", "report.html")
+OUTPUT_FILES = (
+    "summary.json",
+    "loss_distribution.csv",
+    "obligors.csv",
+    "contributions.csv",
+    "sectors.csv",
+    "report.html",
+)
 
 
 def write_run(
@@ -60,7 +67,8 @@ def write_run(
     -------
     Path
         ``out_dir``, now holding ``summary.json``, ``loss_distribution.csv``,
-        ``obligors.csv`` and ``report.html``.
+        ``obligors.csv``, ``contributions.csv`` and ``sectors.csv`` (when the
+        run allocated its risk) and ``report.html``.
 
     Raises
     ------
@@ -80,5 +88,9 @@ def write_run(
         write_loss_distribution(tmp / "loss_distribution.csv", dist.losses, dist.probabilities)
         table = analysis.obligors
         write_csv(tmp / "obligors.csv", list(table.columns), table.itertuples(index=False))
+        for name, frame in (("contributions.csv", analysis.contributions),
+                            ("sectors.csv", analysis.sector_contributions)):
+            if frame is not None:
+                write_csv(tmp / name, list(frame.columns), frame.itertuples(index=False))
         (tmp / "report.html").write_text(page, encoding="utf-8")
     return out_dir

@@ -11,6 +11,7 @@ from typing import Protocol
 import pandas as pd
 
 from debtsim.book.records import Book
+from debtsim.contributions import Allocation
 from debtsim.distribution import LossDistribution
 from debtsim.model.specification import LinkedFactorModel
 from debtsim.options import RunOptions
@@ -65,3 +66,15 @@ class RunView(Protocol):
     @property
     def obligors(self) -> pd.DataFrame:
         """Per-obligor results, the columns of ``obligors.csv``."""
+
+    @property
+    def allocation(self) -> Allocation | None:
+        """Euler risk contributions, when computed."""
+
+    @property
+    def contributions(self) -> pd.DataFrame | None:
+        """Per-obligor contributions, the columns of ``contributions.csv``."""
+
+    @property
+    def sector_contributions(self) -> pd.DataFrame | None:
+        """Contributions by sector, the columns of ``sectors.csv``."""

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from typing import Any
 
+from debtsim.contributions import contribution_summary
 from debtsim.link_effects import contagion_effect, rank_links
 from debtsim.output_files import GENERATOR_KEY, generator
 from debtsim.report.run_view import RunView
@@ -101,6 +102,16 @@ def summary_dict(analysis: RunView) -> dict[str, Any]:
             "link_indicator": "contagion * debtor PD with contagion * (1 - creditor PD) "
             "* creditor EAD * creditor LGD (first-order expected loss carried by the link)",
         },
+        "contributions": _contributions_block(analysis),
         "book_source": book.source,
         "caution": CAUTION,
     }
+
+
+def _contributions_block(analysis: RunView) -> dict[str, Any] | None:
+    """Totals, contagion share, HHI and IRB total of the run's risk contributions."""
+    allocation = analysis.allocation
+    if allocation is None:
+        return None
+    groups = [c.tolist() for c in analysis.model.components if c.size > 1]
+    return contribution_summary(analysis.book, allocation, groups)

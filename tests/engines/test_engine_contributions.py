@@ -63,17 +63,17 @@ def test_sample_contributions_within_four_standard_errors_of_exact() -> None:
     se = alloc.standard_error
     assert se is not None
     risk = measures(law, levels)
-    slack = 1e-9 * risk.expected_shortfall["0.999"]
+    slack = 1e-9 * risk.expected_shortfall[0.999]
     for name in ("expected_loss", "loss_std", "expected_shortfall", "economic_capital",
                  "expected_shortfall_contagion", "expected_loss_contagion"):
         got, want, err = getattr(alloc, name), getattr(ref, name), getattr(se, name)
         assert np.all(np.abs(got - want) <= 4 * err + slack), name
     for j, a in enumerate(levels):
         assert alloc.expected_shortfall[j].sum() == pytest.approx(
-            risk.expected_shortfall[str(a)], rel=1e-9)
-        assert alloc.var[j].sum() == pytest.approx(risk.var[str(a)], rel=1e-9)
+            risk.expected_shortfall[a], rel=1e-9)
+        assert alloc.var[j].sum() == pytest.approx(risk.var[a], rel=1e-9)
         assert alloc.economic_capital[j].sum() == pytest.approx(
-            risk.economic_capital[str(a)], rel=1e-9)
+            risk.economic_capital[a], rel=1e-9)
     assert alloc.loss_std.sum() == pytest.approx(risk.loss_std, rel=1e-9)
 
 

@@ -117,12 +117,11 @@ def test_sum_rules_on_the_loss_grid(links: int) -> None:
     assert alloc.expected_loss.sum() == pytest.approx(risk.expected_loss, rel=1e-9)
     assert alloc.loss_std.sum() == pytest.approx(risk.loss_std, rel=1e-9)
     for j, a in enumerate((0.99, 0.999)):
-        key = str(a)
-        assert alloc.var[j].sum() == pytest.approx(risk.var[key], rel=1e-9)
+        assert alloc.var[j].sum() == pytest.approx(risk.var[a], rel=1e-9)
         assert alloc.expected_shortfall[j].sum() == pytest.approx(
-            risk.expected_shortfall[key], rel=1e-9)
+            risk.expected_shortfall[a], rel=1e-9)
         assert alloc.economic_capital[j].sum() == pytest.approx(
-            risk.economic_capital[key], rel=1e-9)
+            risk.economic_capital[a], rel=1e-9)
     if links:
         assert alloc.expected_loss_contagion.sum() > 0
         assert alloc.expected_shortfall_contagion[-1].sum() > 0
@@ -142,8 +141,8 @@ def test_homogeneous_book_contributions_are_equal() -> None:
     risk = measures(dist, (0.99, 0.999))
     for j, a in enumerate((0.99, 0.999)):
         np.testing.assert_allclose(alloc.expected_shortfall[j],
-                                   risk.expected_shortfall[str(a)] / n, rtol=1e-10)
-        np.testing.assert_allclose(alloc.var[j], risk.var[str(a)] / n, rtol=1e-10)
+                                   risk.expected_shortfall[a] / n, rtol=1e-10)
+        np.testing.assert_allclose(alloc.var[j], risk.var[a] / n, rtol=1e-10)
     np.testing.assert_allclose(alloc.loss_std, risk.loss_std / n, rtol=1e-10)
 
 

@@ -279,14 +279,14 @@ def contribution_table(book: Book, allocation: Allocation) -> pd.DataFrame:
 
 
 def sector_table(table: pd.DataFrame) -> pd.DataFrame:
-    """The obligor table summed by ``sector`` (sectors in order of first appearance)."""
+    """Sum the obligor table by ``sector`` (sectors in order of first appearance)."""
     out = table.drop(columns=["id"]).groupby("sector", sort=False).sum(numeric_only=True)
     return out.reset_index()
 
 
 def contribution_summary(book: Book, allocation: Allocation, groups: Sequence[Sequence[int]]
                          ) -> dict[str, Any]:
-    """The ``contributions`` block of ``summary.json``.
+    """Build the ``contributions`` block of ``summary.json``.
 
     Parameters
     ----------

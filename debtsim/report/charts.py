@@ -425,3 +425,51 @@ def uplift_chart(
     ax.legend(frameon=False, loc="lower right", bbox_to_anchor=(1.0, 1.0), ncol=2, fontsize=9)
     ax.set_title("Default probability added by contagion", loc="left", fontsize=11)
     return png_base64(fig)
+
+
+def paired_bars_chart(
+    labels: Sequence[str],
+    first: Sequence[float],
+    second: Sequence[float],
+    names: tuple[str, str],
+    title: str,
+    *,
+    contagion: Sequence[float] | None = None,
+) -> str:
+    """Horizontal bar pairs, one pair per label (e.g. model capital beside IRB capital).
+
+    Parameters
+    ----------
+    labels : sequence of str
+        Drawn top to bottom.
+    first, second : sequence of float
+        The two values of each label (currency).
+    names : (str, str)
+        Legend names of the two bars.
+    title : str
+    contagion : sequence of float, optional
+        Part of ``first`` carried by contagion, drawn over it in the contagion colour.
+
+    Returns
+    -------
+    str
+        Base64 PNG.
+    """
+    n = len(labels)
+    fig, ax = new_figure(9.0, max(2.2, 0.42 * n + 1.0))
+    ax.grid(False, axis="y")
+    ax.grid(True, axis="x", color="#e3e6ea", linewidth=0.8)
+    y = np.arange(n)[::-1].astype(float)
+    a = np.asarray(first, dtype=float)
+    b = np.asarray(second, dtype=float)
+    ax.barh(y + 0.2, a, color=PLAIN_COLOUR, height=0.38, label=names[0])
+    if contagion is not None:
+        ax.barh(y + 0.2, np.asarray(contagion, dtype=float), color=CONTAGION_COLOUR,
+                height=0.38, label="of which contagion")
+    ax.barh(y - 0.2, b, color="#4c72b0", height=0.38, label=names[1])
+    ax.set_yticks(y, [plain_text(t) for t in labels], fontsize=8)
+    amount_axis(ax, "x")
+    ax.axvline(0.0, color="#555555", linewidth=0.8)
+    ax.legend(frameon=False, loc="lower right", bbox_to_anchor=(1.0, 1.0), ncol=3, fontsize=9)
+    ax.set_title(title, loc="left", fontsize=11)
+    return png_base64(fig)

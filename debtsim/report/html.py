@@ -31,6 +31,7 @@ from debtsim.report.formatting import (
     signed_money,
     signed_pp,
 )
+from debtsim.report.contribution_section import contribution_section
 from debtsim.report.page import esc, figure, render_page
 from debtsim.report.run_view import RunView
 from debtsim.report.text import PD_WITH_CONTAGION, WITHOUT_LINKS, WITHOUT_LINKS_HEADING
@@ -52,7 +53,14 @@ LINK_ROWS = 25
 #: Obligors drawn in the uplift chart.
 UPLIFT_BARS = 25
 #: Files of a run folder, named in the footer.
-RUN_FILES = ("summary.json", "loss_distribution.csv", "obligors.csv", "report.html")
+RUN_FILES = (
+    "summary.json",
+    "loss_distribution.csv",
+    "obligors.csv",
+    "contributions.csv",
+    "sectors.csv",
+    "report.html",
+)
 
 #: Plain labels of engine settings and diagnostics (keys as in ``summary.json``).
 DETAIL_LABELS: Mapping[str, str] = {
@@ -599,6 +607,7 @@ def render_html(analysis: RunView, created: _dt.datetime | None = None) -> str:
         f"{_measures_table(analysis)}"
         f"{_charts(analysis)}"
         f"{_contagion_section(analysis)}"
+        f"{contribution_section(analysis)}"
         f"{_book_table(analysis)}"
         f"{_dependence_note(analysis)}{_how_to_read()}"
         f"{_appendix(analysis)}"

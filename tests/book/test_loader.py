@@ -275,7 +275,7 @@ def test_message_format_matches_design_example(in_books: Path) -> None:
         (
             {"rating": "BB"},
             "obligors[0] (id 'A1').rating: unknown field "
-            "(allowed: id, name, sector, ead, pd, lgd, asset_correlation)",
+            "(allowed: id, name, sector, ead, pd, lgd, asset_correlation, maturity)",
         ),
         ({"Sector": "x"}, "obligors[0] (id 'A1').Sector: unknown field (did you mean 'sector'?)"),
     ],
@@ -769,7 +769,7 @@ def test_field_constants() -> None:
     """The public field lists match the book format in DESIGN.md."""
     assert BOOK_FIELDS == ("book", "currency", "obligors", "links", "model")
     assert set(REQUIRED_OBLIGOR_FIELDS) <= set(OBLIGOR_FIELDS)
-    assert set(OBLIGOR_FIELDS) - set(REQUIRED_OBLIGOR_FIELDS) == {"name", "sector"}
+    assert set(OBLIGOR_FIELDS) - set(REQUIRED_OBLIGOR_FIELDS) == {"name", "sector", "maturity"}
     assert set(LINK_FIELDS) - set(REQUIRED_LINK_FIELDS) == {"amount"}
 
 
@@ -814,6 +814,7 @@ def books(
             asset_correlation=draw(st.floats(0, 1, exclude_max=True)),
             name=draw(text),
             sector=draw(text),
+            maturity=draw(st.floats(1, 5)),
         )
         for i in names
     )
@@ -992,3 +993,19 @@ def test_absurd_exposure_is_refused(tmp_path) -> None:
         load_book(book)
     assert "huge.yaml:3: obligors[0] (id 'A').ead: must be at most 1e+18" in str(info.value)
     assert "1e+200" in str(info.value) or "1.0e+200" in str(info.value)
+
+
+def test_maturity_is_optional_and_checked(tmp_path: Path) -> None:
+    """Obligor maturity defaults to 2.5 years; outside 1..5 it is a file:line field error."""
+    assert load_book(write(tmp_path, "a.yaml", one_obligor_book())).obligors[0].maturity == 2.5
+    book = load_book(write(tmp_path, "b.yaml", one_obligor_book(maturity=4)))
+    assert book.obligors[0].maturity == 4.0
+    found = problems(write(tmp_path, "c.yaml", one_obligor_book(maturity=7)))
+    assert len(found) == 1
+    assert "c.yaml:8: obligors[0] (id 'A1').maturity:" in found[0]
+    assert "must be between 1 and 5 (years), got 7" in found[0]
+    csv_book = write(tmp_path, "d.yaml", "book: t\nobligors: o.csv\n")
+    write(tmp_path, "o.csv", HEADER.strip() + ",maturity\nA,,,10,0.01,0.4,0.1,\n"
+          "B,,,10,0.01,0.4,0.1,0.5\n")
+    found = problems(csv_book)
+    assert len(found) == 1 and "o.csv:3:" in found[0] and "maturity" in found[0]

@@ -21,6 +21,7 @@ from debtsim.distribution import LossDistribution
 from debtsim.link_effects import contagion_effect, obligor_contagion, rank_links
 from debtsim.output_files import generator
 from debtsim.report import charts
+from debtsim.report.contribution_section import contribution_section
 from debtsim.report.formatting import (
     NOISE,
     level_label,
@@ -31,7 +32,6 @@ from debtsim.report.formatting import (
     signed_money,
     signed_pp,
 )
-from debtsim.report.contribution_section import contribution_section
 from debtsim.report.page import esc, figure, render_page
 from debtsim.report.run_view import RunView
 from debtsim.report.text import PD_WITH_CONTAGION, WITHOUT_LINKS, WITHOUT_LINKS_HEADING

@@ -75,19 +75,22 @@ from debtsim.engines.exact.loss_grid import (
     bernstein_halfwidth,
     grid_law,
     place_window,
+    product_law,
 )
 from debtsim.errors import EngineRefusedError
 from debtsim.model.factor_grid import FactorGrid
 from debtsim.model.specification import LinkedFactorModel, conditional_default_probability
 from debtsim.risk import value_at_risk
 
-__all__ = ["SERIES_TOLERANCE", "bernoulli_functionals", "exact_moments"]
+__all__ = ["NEGLIGIBLE", "SERIES_TOLERANCE", "bernoulli_functionals", "exact_moments", "law_span"]
 
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
 
 #: Smallest ``theta^r`` kept in the deconvolution series.
 SERIES_TOLERANCE = 1e-18
+#: Probability below which a node's law is taken to hold nothing (series terms, tails).
+NEGLIGIBLE = 1e-17
 
 #: ``lookup(positions) -> (P(L <= x), P(L = x))`` on one node's law.
 Lookup = Callable[[FloatArray], tuple[FloatArray, FloatArray]]
@@ -109,28 +112,37 @@ def bernoulli_functionals(
     k : ndarray, shape (c,)
         Loss of one obligor of the class (``> 0``), in the units of ``points``.
     points : sequence of float
-        The points ``x`` (one per level).
+        The points ``x`` (e.g. one per level).
     lookup : callable
         CDF and atom of the node's law of ``L`` at arbitrary points.
     span : (float, float)
-        Smallest and largest point of the law's support.
+        ``P(L < span[0])`` and ``P(L > span[1])`` are at most
+        :data:`NEGLIGIBLE`: the series stop there.
 
     Returns
     -------
     below, atom : ndarray, shape (len(points), c)
-        See the module notes for the series.
+        See the module notes for the series.  Where ``P(L >= x)`` is at most
+        :data:`NEGLIGIBLE`, ``below = p`` and ``atom = 0``; where ``P(L <= x)``
+        is, both are 0 (each is bounded by that probability).
     """
     c = p.size
     m = len(points)
     below = np.zeros((m, c))
     atom = np.zeros((m, c))
-    if c == 0:
+    if c == 0 or m == 0:
         return below, atom
     pts = np.asarray(points, dtype=float)
     cdf_x, atom_x = lookup(pts)
+    upper = 1.0 - cdf_x + atom_x  # P(L >= x)
+    for j in np.flatnonzero(upper <= NEGLIGIBLE):
+        below[j] = p
+    bulk = np.flatnonzero((upper > NEGLIGIBLE) & (cdf_x > NEGLIGIBLE))
+    if bulk.size == 0:
+        return below, atom
     certain = p >= 1.0
-    below[:, certain] = cdf_x[:, None]
-    atom[:, certain] = atom_x[:, None]
+    below[np.ix_(bulk, np.flatnonzero(certain))] = cdf_x[bulk, None]
+    atom[np.ix_(bulk, np.flatnonzero(certain))] = atom_x[bulk, None]
     for flip in (False, True):
         sel = np.flatnonzero(((p > 0.5) if flip else (p <= 0.5)) & (p > 0.0) & ~certain)
         if sel.size == 0:
@@ -143,26 +155,27 @@ def bernoulli_functionals(
             need = np.where(
                 theta < 1.0, np.ceil(np.log(SERIES_TOLERANCE) / log_theta), np.inf
             )
-        for j in range(m):
-            room = (span[1] - pts[j]) if flip else (pts[j] - span[0])
-            reach = np.floor(np.maximum(room, -1.0) / kk + 1e-9) + 1.0
-            terms = np.minimum(need, np.maximum(reach, 0.0)).astype(np.int64)
-            total = int(terms.sum())
-            if total == 0:
-                s1 = np.zeros(sel.size)
-                s2 = np.zeros(sel.size)
-            else:
-                owner = np.repeat(np.arange(sel.size), terms)
-                first = np.cumsum(terms) - terms
-                r = np.arange(total) - np.repeat(first, terms) + 1
-                coef = np.exp(r * log_theta[owner])
-                coef[(r % 2) == 0] *= -1.0
-                x = pts[j] + r * kk[owner] if flip else pts[j] - r * kk[owner]
-                f, a = lookup(x)
+        # one set of terms for every point: as far as the farthest point needs
+        room = (span[1] - pts[bulk].min()) if flip else (pts[bulk].max() - span[0])
+        reach = np.floor(max(room, -1.0) / kk + 1e-9) + 1.0
+        terms = np.minimum(need, np.maximum(reach, 0.0)).astype(np.int64)
+        total = int(terms.sum())
+        if total:
+            owner = np.repeat(np.arange(sel.size), terms)
+            first = np.cumsum(terms) - terms
+            r = np.arange(total) - np.repeat(first, terms) + 1
+            coef = np.exp(r * log_theta[owner])
+            coef[(r % 2) == 0] *= -1.0
+            step = r * kk[owner]
+        for j in bulk.tolist():
+            if total:
+                f, a = lookup(pts[j] + step if flip else pts[j] - step)
                 if flip:
                     f = 1.0 - f
                 s1 = np.bincount(owner, weights=coef * f, minlength=sel.size)
                 s2 = np.bincount(owner, weights=coef * a, minlength=sel.size)
+            else:
+                s1 = s2 = np.zeros(sel.size)
             if flip:
                 # E[D 1{L <= v}] = p - E[D 1{L > v}] = p - (P(L > v) - E[(1-D) 1{L > v}])
                 below[j, sel] = pp - ((1.0 - cdf_x[j]) - s1)
@@ -171,6 +184,13 @@ def bernoulli_functionals(
                 below[j, sel] = s1
                 atom[j, sel] = s2
     return below, atom
+
+
+def law_span(cum: FloatArray, positions: FloatArray) -> tuple[float, float]:
+    """Positions outside which a law (cumulative ``cum``) holds at most :data:`NEGLIGIBLE`."""
+    lo = min(int(np.searchsorted(cum, NEGLIGIBLE, side="right")), cum.size - 1)
+    hi = min(int(np.searchsorted(cum, cum[-1] - NEGLIGIBLE, side="left")), cum.size - 1)
+    return float(positions[lo]), float(positions[max(hi, lo)])
 
 
 class _Accumulator:
@@ -358,7 +378,6 @@ def _atoms_pass(
     order = np.argsort(atoms.support, kind="stable")
     support = atoms.support[order]
     tol = 0.5 * atoms._quantum
-    span = (float(support[0]), float(support[-1]))
     size = support.size
     step = max(1, min(batch, (1 << 22) // max(size, 1)))
 
@@ -397,6 +416,7 @@ def _atoms_pass(
             law = probs[j]
             acc.mass += w * float(law.sum())
             lookup = lookup_of(law)
+            span = law_span(np.cumsum(law), support)
             p = own[j]
             acc.own[single] += w * p[single]
             acc.final[single] += w * p[single]
@@ -461,6 +481,13 @@ def _grid_pass(
         ws = weights[start : start + batch]
         p_pr = conditional_default_probability(pr_unique[:, 0], pr_unique[:, 1], z)
         own_all = model.conditional_pd(z) if groups else None
+        if groups:  # the engine's product of the group laws, per node
+            dense = []
+            for pos_u, merged in zip(glaws.positions, glaws.merged, strict=True):
+                block = np.zeros((z.size, int(pos_u[-1] - pos_u[0]) + 1))
+                block[:, pos_u - pos_u[0]] = merged[start : start + batch]
+                dense.append((int(pos_u[0]), block))
+            group_offset, group_law_batch = product_law(dense)
         for j in range(z.size):
             w = float(ws[j])
             at = start + j
@@ -480,26 +507,14 @@ def _grid_pass(
             half = bernstein_halfwidth(var, bound)
             window = place_window(mean, half, lowest, highest, top)
             width = window.width
-            singles_law, _ = grid_law(cls_k, p, window, count=cls_count)
-            if groups:
-                spectra = []
-                for pos, merged in zip(glaws.positions, glaws.merged, strict=True):
-                    folded = np.bincount(np.mod(pos, width), weights=merged[at], minlength=width)
-                    spectra.append(sfft.rfft(folded))
-                base = sfft.rfft(singles_law)
-                total = base.copy()
-                for s in spectra:
-                    total *= s
-                law = sfft.irfft(total, width)
-            else:
-                law = singles_law
+            extra = (group_offset, group_law_batch[j]) if groups else None
+            law, _ = grid_law(cls_k, p, window, count=cls_count, extra=extra)
             law[: max(lowest - window.start, 0)] = 0.0
             law[max(highest + 1 - window.start, 0) :] = 0.0
             law[law < _NOISE_FLOOR * law.max()] = 0.0
             acc.mass += w * float(law.sum())
             cum = np.cumsum(law)
-            lo_pos = float(max(lowest - window.start, 0))
-            hi_pos = float(min(highest - window.start, width - 1))
+            span = law_span(cum, np.arange(width, dtype=float))
 
             def lookup(x: FloatArray, cum: FloatArray = cum, law: FloatArray = law,
                        width: int = width) -> tuple[FloatArray, FloatArray]:
@@ -513,12 +528,12 @@ def _grid_pass(
             rel = (points - window.start).astype(float)
             # single obligors, one class at a time
             pc = p
-            below, atom = bernoulli_functionals(pc, cls_k.astype(float), rel, lookup,
-                                                (lo_pos, hi_pos))
-            wide_b, _ = bernoulli_functionals(
-                pc, cls_k.astype(float), (wide_points - window.start).astype(float), lookup,
-                (lo_pos, hi_pos),
+            both, both_atom = bernoulli_functionals(
+                pc, cls_k.astype(float),
+                np.concatenate([rel, (wide_points - window.start).astype(float)]), lookup, span,
             )
+            below, atom = both[:lev], both_atom[:lev]
+            wide_b = both[lev:]
             o = lossy_single
             co = cls_of
             acc.final[o] += w * pc[co]
@@ -535,6 +550,30 @@ def _grid_pass(
             if not groups:
                 continue
             assert own_all is not None
+            all_rel = np.concatenate([rel, (wide_points - window.start).astype(float)])
+            f_all, a_all = lookup(all_rel)
+            upper = 1.0 - f_all + a_all
+            if not np.any((upper > NEGLIGIBLE) & (f_all > NEGLIGIBLE)):
+                # VaR far from this node's law: 1{L <= v} is 1 (or 0) for every state
+                side = (upper <= NEGLIGIBLE).astype(float)
+                for gi, g in enumerate(groups):
+                    own_g = own_all[j : j + 1, g.members]
+                    glaw = _group_state_law(g, own_g)[0]
+                    forced = [f[0] for f in _forced_laws(g, own_g)]
+                    n_s = glaw.size
+                    rb = np.repeat(side[:lev, None], n_s, axis=1)
+                    rw = np.repeat((side[2 * lev :] - side[lev : 2 * lev])[:, None], n_s, axis=1)
+                    pos = group_pos[gi]
+                    rest_mean = mean - float(glaw @ pos)
+                    _group_terms(acc, g, glaw, forced, w, rb, np.zeros_like(rb), rw, rest_mean,
+                                 pos.astype(float))
+                continue
+            singles_law, _ = grid_law(cls_k, p, window, count=cls_count)
+            spectra = []
+            for pos_u, merged in zip(glaws.positions, glaws.merged, strict=True):
+                folded = np.bincount(np.mod(pos_u, width), weights=merged[at], minlength=width)
+                spectra.append(sfft.rfft(folded))
+            base = sfft.rfft(singles_law)
             n_g = len(groups)
             prefix = [base]
             for s in spectra[:-1]:

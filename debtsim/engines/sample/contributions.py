@@ -29,10 +29,10 @@ from numpy.typing import NDArray
 from debtsim.contributions import Allocation, TailMoments, allocate
 from debtsim.distribution import LossDistribution
 from debtsim.engines.base import ProgressHook
-from debtsim.engines.sample.engine import BATCHES, SampleEngine, tail_measures
+from debtsim.engines.sample.engine import BATCHES, SampleEngine
 from debtsim.engines.sample.scenario_draws import CascadeSampler, ChunkDefaults
 from debtsim.model.specification import LinkedFactorModel
-from debtsim.risk import value_at_risk
+from debtsim.risk import value_at_risk, weighted_sample_measures
 
 __all__ = ["sample_contributions"]
 
@@ -94,7 +94,7 @@ def sample_contributions(
     for b in range(k):
         sl = slice(edges[b], edges[b + 1])
         if scen.weights[sl].sum() > 0:
-            thresholds[b] = tail_measures(scen.losses[sl], scen.weights[sl], levels)[0]
+            thresholds[b] = weighted_sample_measures(scen.losses[sl], scen.weights[sl], levels)[0]
         else:
             thresholds[b] = np.inf
     thresholds[k] = [value_at_risk(law, a) for a in levels]

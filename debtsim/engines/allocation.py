@@ -37,11 +37,17 @@ def run_with_contributions(
         from debtsim.engines.sample.contributions import sample_contributions
 
         return sample_contributions(engine, model, levels, progress=progress)
-    dist = engine.run(model, progress=progress)
     if isinstance(engine, ExactEngine):
-        from debtsim.engines.exact.contributions import exact_moments
+        from debtsim.engines.exact.contributions import NodeLawStore, exact_moments
 
-        return dist, allocate(exact_moments(engine, model, dist, levels))
+        store = NodeLawStore()
+        engine.node_law_sink = store
+        try:
+            dist = engine.run(model, progress=progress)
+        finally:
+            engine.node_law_sink = None
+        return dist, allocate(exact_moments(engine, model, dist, levels, node_laws=store))
+    dist = engine.run(model, progress=progress)
     if isinstance(engine, CircuitEngine) and engine.shots is None:
         from debtsim.engines.circuit.contributions import circuit_moments
 

@@ -82,7 +82,14 @@ from debtsim.model.factor_grid import FactorGrid
 from debtsim.model.specification import LinkedFactorModel, conditional_default_probability
 from debtsim.risk import value_at_risk
 
-__all__ = ["NEGLIGIBLE", "SERIES_TOLERANCE", "bernoulli_functionals", "exact_moments", "law_span"]
+__all__ = [
+    "NEGLIGIBLE",
+    "SERIES_TOLERANCE",
+    "NodeLawStore",
+    "bernoulli_functionals",
+    "exact_moments",
+    "law_span",
+]
 
 FloatArray = NDArray[np.float64]
 IntArray = NDArray[np.int64]
@@ -209,11 +216,33 @@ class _Accumulator:
         self.mass = 0.0
 
 
+class NodeLawStore(list[tuple[int, FloatArray] | None]):
+    """Keeps the exact engine's node laws up to a memory budget (then keeps None).
+
+    Set as ``ExactEngine.node_law_sink`` before :meth:`ExactEngine.run`; pass to
+    :func:`exact_moments` so that node laws are not computed twice.
+    """
+
+    def __init__(self, budget: int = 1 << 26) -> None:
+        super().__init__()
+        self._left = budget  # float64 elements
+
+    def append(self, item: tuple[int, FloatArray] | None) -> None:  # noqa: D102
+        if item is not None and item[1].size <= self._left:
+            self._left -= item[1].size
+            super().append(item)
+        else:
+            self._left = 0
+            super().append(None)
+
+
 def exact_moments(
     engine: ExactEngine,
     model: LinkedFactorModel,
     dist: LossDistribution,
     levels: Sequence[float],
+    *,
+    node_laws: Sequence[tuple[int, FloatArray] | None] | None = None,
 ) -> TailMoments:
     """Moments for the Euler allocation of a law the exact engine computed.
 
@@ -226,6 +255,8 @@ def exact_moments(
         Its law of ``model``.
     levels : sequence of float
         Confidence levels.
+    node_laws : sequence, optional
+        The node laws the run kept (:class:`NodeLawStore`); None recomputes them.
 
     Returns
     -------
@@ -268,7 +299,8 @@ def exact_moments(
         unit = float(dist.settings.get("grid_unit") or plan.unit)
         grid_loss = unit * plan.k.astype(float)
         points = np.round(var / unit).astype(np.int64)
-        _grid_pass(model, grid, single, groups, plan, points, acc, engine.node_batch)
+        stored = node_laws if node_laws is not None and len(node_laws) == len(grid) else None
+        _grid_pass(model, grid, single, groups, plan, points, acc, engine.node_batch, stored)
         diagnostics = {}
     mass = acc.mass
     tail = grid_loss[None, :] * (acc.final[None, :] - acc.below) / mass
@@ -452,6 +484,7 @@ def _grid_pass(
     points: IntArray,
     acc: _Accumulator,
     batch: int,
+    stored: Sequence[tuple[int, FloatArray] | None] | None = None,
 ) -> None:
     """Loss grid: the engine's node laws on their windows, then the series per class."""
     k_all = plan.k
@@ -476,6 +509,12 @@ def _grid_pass(
     nodes, weights = grid.nodes, grid.weights
     lev = points.size
     wide_points = np.concatenate([points - 2, points + 1])  # window v-1..v+1 from two CDFs
+    n_cls = cls_k.size
+    c_final = np.zeros(n_cls)
+    c_cross = np.zeros(n_cls)
+    c_below = np.zeros((lev, n_cls))
+    c_atom = np.zeros((lev, n_cls))
+    c_window = np.zeros((lev, n_cls))
     for start in range(0, len(grid), batch):
         z = nodes[start : start + batch]
         ws = weights[start : start + batch]
@@ -507,11 +546,15 @@ def _grid_pass(
             half = bernstein_halfwidth(var, bound)
             window = place_window(mean, half, lowest, highest, top)
             width = window.width
-            extra = (group_offset, group_law_batch[j]) if groups else None
-            law, _ = grid_law(cls_k, p, window, count=cls_count, extra=extra)
-            law[: max(lowest - window.start, 0)] = 0.0
-            law[max(highest + 1 - window.start, 0) :] = 0.0
-            law[law < _NOISE_FLOOR * law.max()] = 0.0
+            kept = stored[at] if stored is not None else None
+            if kept is not None and kept[0] == window.start and kept[1].size == width:
+                law = kept[1]
+            else:
+                extra = (group_offset, group_law_batch[j]) if groups else None
+                law, _ = grid_law(cls_k, p, window, count=cls_count, extra=extra)
+                law[: max(lowest - window.start, 0)] = 0.0
+                law[max(highest + 1 - window.start, 0) :] = 0.0
+                law[law < _NOISE_FLOOR * law.max()] = 0.0
             acc.mass += w * float(law.sum())
             cum = np.cumsum(law)
             span = law_span(cum, np.arange(width, dtype=float))
@@ -534,19 +577,12 @@ def _grid_pass(
             )
             below, atom = both[:lev], both_atom[:lev]
             wide_b = both[lev:]
-            o = lossy_single
-            co = cls_of
-            acc.final[o] += w * pc[co]
-            acc.own[o] += w * pc[co]
-            acc.below[:, o] += w * below[:, co]
-            acc.below_own[:, o] += w * below[:, co]
-            acc.atom[:, o] += w * atom[:, co]
-            acc.atom_own[:, o] += w * atom[:, co]
-            wnd = wide_b[lev:] - wide_b[:lev]
-            acc.window[:, o] += w * wnd[:, co]
-            cross = pc * (cls_k + mean - pc * cls_k)
-            acc.cross[o] += w * cross[co]
-            acc.cross_own[o] += w * cross[co]
+            # sums per class; spread to the obligors once at the end
+            c_final += w * pc
+            c_below += w * below
+            c_atom += w * atom
+            c_window += w * (wide_b[lev:] - wide_b[:lev])
+            c_cross += w * (pc * (cls_k + mean - pc * cls_k))
             if not groups:
                 continue
             assert own_all is not None
@@ -608,3 +644,13 @@ def _grid_pass(
                 forced = [f[0] for f in _forced_laws(g, own_g)]
                 rest_mean = mean - float(glaw @ pos)
                 _group_terms(acc, g, glaw, forced, w, rb, ra, rw, rest_mean, pos.astype(float))
+    o, co = lossy_single, cls_of
+    for target in (acc.final, acc.own):
+        target[o] += c_final[co]
+    for target in (acc.cross, acc.cross_own):
+        target[o] += c_cross[co]
+    for target in (acc.below, acc.below_own):
+        target[:, o] += c_below[:, co]
+    for target in (acc.atom, acc.atom_own):
+        target[:, o] += c_atom[:, co]
+    acc.window[:, o] += c_window[:, co]

@@ -162,6 +162,9 @@ class ExactEngine(Engine):
         self.max_component_size = int(max_component_size)
         self.exact_support_limit = int(exact_support_limit)
         self.node_batch = int(node_batch)
+        #: When a list, grid-mode runs append every node's law ``(window start, law)`` to it
+        #: (risk contributions reuse them instead of computing each node twice).
+        self.node_law_sink: list[tuple[int, FloatArray]] | None = None
 
     # ------------------------------------------------------------ refusal
     def refusal(self, model: LinkedFactorModel) -> str | None:
@@ -277,7 +280,9 @@ class ExactEngine(Engine):
         if plan.mode == "atoms":
             result = _run_atoms(model, grid, single, groups, plan, self.node_batch, progress)
         else:
-            result = _run_grid(model, grid, single, groups, plan, self.node_batch, progress)
+            result = _run_grid(
+                model, grid, single, groups, plan, self.node_batch, progress, self.node_law_sink
+            )
         losses, probs, default_probability, diagnostics, unit = result
         settings: dict[str, Any] = {
             "factor_nodes": len(grid),
@@ -596,6 +601,7 @@ def _run_grid(
     plan: _LossPlan,
     batch: int,
     progress: ProgressHook | None,
+    sink: list[tuple[int, FloatArray]] | None = None,
 ) -> tuple[FloatArray, FloatArray, FloatArray, dict[str, Any], float]:
     """Loss grid: per-node law on a window by the log-PGF series, mixed over nodes."""
     loss = model.loss_given_default
@@ -676,6 +682,8 @@ def _run_grid(
             law[max(highest + 1 - window.start, 0) :] = 0.0
             law[law < _NOISE_FLOOR * law.max()] = 0.0
             mixture[window.start : window.start + window.width] += w[j] * law
+            if sink is not None:
+                sink.append((window.start, law))
         if progress is not None:
             progress(min(start + batch, n_nodes), n_nodes)
     default_probability[single] = pr_probability[pr_of[single]]

@@ -24,7 +24,8 @@ __all__ = ["write_stress", "write_sweep"]
 def write_stress(result: StressResult, out_dir: Path | str, *, source: str = "") -> Path:
     """Write the stress folder atomically.
 
-    ``scenarios.csv``, ``default_probabilities.csv``, ``summary.json`` (marker
+    ``scenarios.csv``, ``default_probabilities.csv``, ``contribution_movers.csv``
+    (when the runs allocated their risk), ``summary.json`` (marker
     and overview), ``report.html`` and one sub-folder per run (``base`` first)
     with that run's usual files.
 
@@ -59,6 +60,13 @@ def write_stress(result: StressResult, out_dir: Path | str, *, source: str = "")
             list(dp.columns),
             list(dp.itertuples(index=False, name=None)),
         )
+        movers = result.contribution_movers
+        if movers is not None:
+            write_csv(
+                tmp / "contribution_movers.csv",
+                list(movers.columns),
+                list(movers.itertuples(index=False, name=None)),
+            )
         write_json(tmp / "summary.json", _stress_summary(result, generator(), source))
         write_stress_report(tmp / "report.html", result)
     return out_dir

@@ -16,7 +16,7 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from debtsim.report.formatting import money, percent, relative_change, signed_pp
+from debtsim.report.formatting import level_label, money, percent, relative_change, signed_pp
 from debtsim.report.page import esc, figure, render_page
 from debtsim.report.study_charts import (
     loss_distributions_chart,
@@ -168,7 +168,33 @@ def render_stress_page(result: StressResult) -> str:
             + f'<td class="n up">{signed_pp(float(row["largest_change"]))}</td></tr>'
         )
     parts.append("</tbody></table></div>")
+    movers = result.contribution_movers
+    if movers is not None and len(movers):
+        level = result.options.levels[-1]
+        parts.append(
+            f"<h2>Risk contributions that moved most</h2><p class='note'>Each obligor's "
+            f"contribution to expected shortfall at {esc(level_label(level))} (its Euler share "
+            "of the book's ES) in the base and in the scenario; up to "
+            f"{int(movers.groupby('scenario').size().max())} obligors per scenario, largest "
+            "change first. Each "
+            "sub-folder holds the run's <code>contributions.csv</code>; all movers are in "
+            "<code>contribution_movers.csv</code>.</p>"
+            '<div class="scroll"><table><thead><tr><th>Scenario</th><th>Obligor</th>'
+            '<th>Sector</th><th class="n">Base</th><th class="n">Scenario</th>'
+            '<th class="n">Change</th><th class="n">of which contagion</th></tr></thead><tbody>'
+        )
+        for _, row in movers.iterrows():
+            parts.append(
+                f"<tr><td>{esc(str(row['scenario']))}</td><td>{esc(str(row['id']))}</td>"
+                f"<td>{esc(str(row['sector']))}</td>"
+                f'<td class="n">{_amount(row["base"])}</td>'
+                f'<td class="n">{_amount(row["stressed"])}</td>'
+                f'<td class="n">{_amount(row["change"])}</td>'
+                f'<td class="n">{_amount(row["contagion_change"])}</td></tr>'
+            )
+        parts.append("</tbody></table></div>")
     files = ("report.html", "scenarios.csv", "default_probabilities.csv",
+             *(("contribution_movers.csv",) if movers is not None else ()),
              *(f"{f}/" for f in result.folders))
     return render_page(f"Stress scenarios: {book.name}", subtitle, "\n".join(parts),
                        warnings=warnings, files=files)

@@ -28,7 +28,9 @@ from debtsim.studies.execution import Execution, run_tasks
 from debtsim.studies.scenarios import BASE_NAME, Scenario, apply_scenario, folder_name
 
 __all__ = [
+    "MOVERS_PER_SCENARIO",
     "StressResult",
+    "contribution_movers",
     "default_probability_table",
     "run_stress",
     "scenario_table",
@@ -51,6 +53,8 @@ class StressResult:
         ``scenarios.csv``: see :func:`scenario_table`.
     default_probabilities : pandas.DataFrame
         See :func:`default_probability_table`.
+    contribution_movers : pandas.DataFrame or None
+        See :func:`contribution_movers`.
     execution : str
         Where the runs went.
     seconds : float
@@ -64,6 +68,7 @@ class StressResult:
     options: RunOptions
     table: pd.DataFrame
     default_probabilities: pd.DataFrame
+    contribution_movers: pd.DataFrame | None
     execution: str
     seconds: float
 
@@ -103,6 +108,7 @@ def _evaluate(book: Book, task: tuple[Scenario, RunOptions]) -> dict[str, Any]:
         "distribution": _pack(analysis.loss_distribution),
         "copula": _pack(analysis.copula_distribution),
         "notes": tuple(analysis.notes),
+        "allocation": analysis.allocation,
     }
 
 
@@ -124,6 +130,7 @@ def _rebuild(
         copula_distribution=copula,
         copula_measures=measures(copula, options.levels) if copula is not None else None,
         notes=tuple(data["notes"]),
+        allocation=data.get("allocation"),
     )
 
 
@@ -201,6 +208,58 @@ def default_probability_table(
     return frame.iloc[order].reset_index(drop=True)
 
 
+#: Obligors listed per scenario in ``contribution_movers.csv``.
+MOVERS_PER_SCENARIO = 10
+
+
+def contribution_movers(
+    names: Sequence[str], runs: Sequence[RunResult], top: int = MOVERS_PER_SCENARIO
+) -> pd.DataFrame | None:
+    """Obligors whose ES contribution at the highest level moved most in each scenario.
+
+    Parameters
+    ----------
+    names : sequence of str
+        Scenario names, the base first.
+    runs : sequence of RunResult
+        The base run first; each with its contributions.
+    top : int
+        Obligors kept per scenario.
+
+    Returns
+    -------
+    DataFrame or None
+        ``scenario, id, sector, base, stressed, change, contagion_change`` (amounts: ES
+        contributions and their contagion parts), largest ``|change|`` first within each
+        scenario; None when a run has no contributions.
+    """
+    tables = [r.contributions for r in runs]
+    if not runs or any(t is None for t in tables) or not runs[0].options.levels:
+        return None
+    level = runs[0].options.levels[-1]
+    col = f"expected_shortfall_{level}"
+    base = tables[0]
+    assert base is not None
+    rows = []
+    for name, table in zip(names[1:], tables[1:], strict=True):
+        assert table is not None
+        change = table[col].to_numpy() - base[col].to_numpy()
+        contagion = table[col + "_contagion"].to_numpy() - base[col + "_contagion"].to_numpy()
+        order = np.argsort(-np.abs(change), kind="stable")[:top]
+        for i in order.tolist():
+            rows.append({
+                "scenario": name,
+                "id": base["id"].iloc[i],
+                "sector": table["sector"].iloc[i],
+                "base": float(base[col].iloc[i]),
+                "stressed": float(table[col].iloc[i]),
+                "change": float(change[i]),
+                "contagion_change": float(contagion[i]),
+            })
+    columns = ["scenario", "id", "sector", "base", "stressed", "change", "contagion_change"]
+    return pd.DataFrame(rows, columns=columns)
+
+
 def run_stress(
     book: Book,
     scenarios: Sequence[Scenario],
@@ -275,6 +334,7 @@ def run_stress(
         options=options,
         table=scenario_table(names, analyses, options.levels),
         default_probabilities=default_probability_table(book, names, analyses),
+        contribution_movers=contribution_movers(names, analyses),
         execution=execution.label,
         seconds=time.perf_counter() - started,
     )

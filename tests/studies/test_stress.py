@@ -202,3 +202,33 @@ def test_stress_on_local_cluster_matches_in_process(files: tuple[Path, Path]) ->
     pd.testing.assert_frame_equal(
         here.default_probabilities, there.default_probabilities, check_exact=True
     )
+
+
+def test_stress_writes_each_runs_contributions_and_the_movers(tmp_path) -> None:
+    """Every scenario sub-folder holds contributions.csv; movers compare ES parts to the base."""
+    import pandas as pd
+
+    import debtsim
+    from debtsim.book.records import Book, Link, Obligor
+    from debtsim.studies.scenarios import Scenario, load_scenarios
+
+    book = Book(name="s", currency="EUR", obligors=tuple(
+        Obligor(id=f"M{i}", ead=1000.0 + 100 * i, pd=0.02, lgd=0.5, asset_correlation=0.2,
+                sector="a" if i < 2 else "b") for i in range(4)),
+        links=(Link(creditor="M1", debtor="M0", contagion=0.5),))
+    scen_file = tmp_path / "s.yaml"
+    scen_file.write_text("scenarios:\n  - name: worse\n    pd_scale: 3\n", encoding="utf-8")
+    scenarios = load_scenarios(scen_file, book)
+    assert all(isinstance(s, Scenario) for s in scenarios)
+    result = debtsim.stress(book, scenarios, engine="exact")
+    movers = result.contribution_movers
+    assert list(movers.columns) == ["scenario", "id", "sector", "base", "stressed", "change",
+                                    "contagion_change"]
+    base = result.runs[0].contributions.set_index("id")["expected_shortfall_0.999"]
+    worse = result.runs[1].contributions.set_index("id")["expected_shortfall_0.999"]
+    for _, row in movers.iterrows():
+        assert row["change"] == pytest.approx(worse[row["id"]] - base[row["id"]])
+    out = debtsim.write_stress(result, tmp_path / "out")
+    for folder in result.folders:
+        assert (out / folder / "contributions.csv").exists()
+    assert len(pd.read_csv(out / "contribution_movers.csv")) == len(movers)

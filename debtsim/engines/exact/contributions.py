@@ -106,7 +106,7 @@ Lookup = Callable[[FloatArray], tuple[FloatArray, FloatArray]]
 def bernoulli_functionals(
     p: FloatArray,
     k: FloatArray,
-    points: Sequence[float],
+    points: Sequence[float] | FloatArray,
     lookup: Lookup,
     span: tuple[float, float],
 ) -> tuple[FloatArray, FloatArray]:
@@ -142,8 +142,8 @@ def bernoulli_functionals(
     pts = np.asarray(points, dtype=float)
     cdf_x, atom_x = lookup(pts)
     upper = 1.0 - cdf_x + atom_x  # P(L >= x)
-    for j in np.flatnonzero(upper <= NEGLIGIBLE):
-        below[j] = p
+    for row in np.flatnonzero(upper <= NEGLIGIBLE).tolist():
+        below[row] = p
     bulk = np.flatnonzero((upper > NEGLIGIBLE) & (cdf_x > NEGLIGIBLE))
     if bulk.size == 0:
         return below, atom
@@ -175,14 +175,16 @@ def bernoulli_functionals(
             coef[(r % 2) == 0] *= -1.0
             step = r * kk[owner]
         for j in bulk.tolist():
+            s1: FloatArray = np.zeros(sel.size)
+            s2: FloatArray = np.zeros(sel.size)
             if total:
-                f, a = lookup(pts[j] + step if flip else pts[j] - step)
+                f_x, a_x = lookup(pts[j] + step if flip else pts[j] - step)
                 if flip:
-                    f = 1.0 - f
-                s1 = np.bincount(owner, weights=coef * f, minlength=sel.size)
-                s2 = np.bincount(owner, weights=coef * a, minlength=sel.size)
-            else:
-                s1 = s2 = np.zeros(sel.size)
+                    f_x = 1.0 - f_x
+                s1 = np.asarray(np.bincount(owner, weights=coef * f_x, minlength=sel.size),
+                                dtype=np.float64)
+                s2 = np.asarray(np.bincount(owner, weights=coef * a_x, minlength=sel.size),
+                                dtype=np.float64)
             if flip:
                 # E[D 1{L <= v}] = p - E[D 1{L > v}] = p - (P(L > v) - E[(1-D) 1{L > v}])
                 below[j, sel] = pp - ((1.0 - cdf_x[j]) - s1)
@@ -551,7 +553,7 @@ def _grid_pass(
                 law = kept[1]
             else:
                 extra = (group_offset, group_law_batch[j]) if groups else None
-                law, _ = grid_law(cls_k, p, window, count=cls_count, extra=extra)
+                law, _ = grid_law(cls_k, p, window, count=cls_count.astype(float), extra=extra)
                 law[: max(lowest - window.start, 0)] = 0.0
                 law[max(highest + 1 - window.start, 0) :] = 0.0
                 law[law < _NOISE_FLOOR * law.max()] = 0.0
@@ -604,7 +606,7 @@ def _grid_pass(
                     _group_terms(acc, g, glaw, forced, w, rb, np.zeros_like(rb), rw, rest_mean,
                                  pos.astype(float))
                 continue
-            singles_law, _ = grid_law(cls_k, p, window, count=cls_count)
+            singles_law, _ = grid_law(cls_k, p, window, count=cls_count.astype(float))
             spectra = []
             for pos_u, merged in zip(glaws.positions, glaws.merged, strict=True):
                 folded = np.bincount(np.mod(pos_u, width), weights=merged[at], minlength=width)
@@ -645,12 +647,12 @@ def _grid_pass(
                 rest_mean = mean - float(glaw @ pos)
                 _group_terms(acc, g, glaw, forced, w, rb, ra, rw, rest_mean, pos.astype(float))
     o, co = lossy_single, cls_of
-    for target in (acc.final, acc.own):
-        target[o] += c_final[co]
-    for target in (acc.cross, acc.cross_own):
-        target[o] += c_cross[co]
-    for target in (acc.below, acc.below_own):
-        target[:, o] += c_below[:, co]
-    for target in (acc.atom, acc.atom_own):
-        target[:, o] += c_atom[:, co]
+    for vector in (acc.final, acc.own):
+        vector[o] += c_final[co]
+    for vector in (acc.cross, acc.cross_own):
+        vector[o] += c_cross[co]
+    for matrix in (acc.below, acc.below_own):
+        matrix[:, o] += c_below[:, co]
+    for matrix in (acc.atom, acc.atom_own):
+        matrix[:, o] += c_atom[:, co]
     acc.window[:, o] += c_window[:, co]

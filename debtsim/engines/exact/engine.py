@@ -164,7 +164,7 @@ class ExactEngine(Engine):
         self.node_batch = int(node_batch)
         #: When a list, grid-mode runs append every node's law ``(window start, law)`` to it
         #: (risk contributions reuse them instead of computing each node twice).
-        self.node_law_sink: list[tuple[int, FloatArray]] | None = None
+        self.node_law_sink: list[tuple[int, FloatArray] | None] | None = None
 
     # ------------------------------------------------------------ refusal
     def refusal(self, model: LinkedFactorModel) -> str | None:
@@ -601,7 +601,7 @@ def _run_grid(
     plan: _LossPlan,
     batch: int,
     progress: ProgressHook | None,
-    sink: list[tuple[int, FloatArray]] | None = None,
+    sink: list[tuple[int, FloatArray] | None] | None = None,
 ) -> tuple[FloatArray, FloatArray, FloatArray, dict[str, Any], float]:
     """Loss grid: per-node law on a window by the log-PGF series, mixed over nodes."""
     loss = model.loss_given_default

@@ -186,7 +186,19 @@ def sample_contributions(
         fields = ("expected_loss", "loss_std", "var", "expected_shortfall", "economic_capital")
         errors = {f: se(f) for f in fields}
         errors.update({f + "_contagion": se(f + "_contagion") for f in fields})
-        standard_error: Allocation | None = Allocation(levels=levels, **errors)
+        standard_error: Allocation | None = Allocation(
+            levels=levels,
+            expected_loss=errors["expected_loss"],
+            loss_std=errors["loss_std"],
+            var=errors["var"],
+            expected_shortfall=errors["expected_shortfall"],
+            economic_capital=errors["economic_capital"],
+            expected_loss_contagion=errors["expected_loss_contagion"],
+            loss_std_contagion=errors["loss_std_contagion"],
+            var_contagion=errors["var_contagion"],
+            expected_shortfall_contagion=errors["expected_shortfall_contagion"],
+            economic_capital_contagion=errors["economic_capital_contagion"],
+        )
     else:
         standard_error = None
     allocation = replace(

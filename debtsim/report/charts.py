@@ -470,6 +470,6 @@ def paired_bars_chart(
     ax.set_yticks(y, [plain_text(t) for t in labels], fontsize=8)
     amount_axis(ax, "x")
     ax.axvline(0.0, color="#555555", linewidth=0.8)
-    ax.legend(frameon=False, loc="lower right", bbox_to_anchor=(1.0, 1.0), ncol=3, fontsize=9)
-    ax.set_title(title, loc="left", fontsize=11)
+    ax.legend(frameon=False, loc="lower left", bbox_to_anchor=(0.0, 1.0), ncol=3, fontsize=9)
+    ax.set_title(title, loc="left", fontsize=11, pad=24)  # above the legend
     return png_base64(fig)

@@ -16,7 +16,6 @@ from typer.testing import CliRunner
 
 import debtsim
 from debtsim.cli import app
-
 from tests.conftest import DEMO_BOOKS, REPO_ROOT
 
 ROOT = REPO_ROOT
@@ -89,9 +88,9 @@ def test_frames(result: debtsim.RunResult) -> None:
     assert frame["probability"].sum() == pytest.approx(1.0, abs=1e-12)
     assert frame["loss"].is_monotonic_increasing
     obligors = result.obligors
-    assert list(obligors.columns[:9]) == ["id", "name", "sector", "ead", "pd", "lgd",
-                                          "asset_correlation", "default_probability",
-                                          "expected_loss"]
+    assert list(obligors.columns[:10]) == ["id", "name", "sector", "ead", "pd", "lgd",
+                                           "asset_correlation", "maturity",
+                                           "default_probability", "expected_loss"]
     assert "own_default_probability" not in obligors.columns
     assert obligors["expected_loss"].sum() == pytest.approx(result.measures.expected_loss)
     assert isinstance(result.diagnostics, dict) or hasattr(result.diagnostics, "get")

@@ -15,6 +15,12 @@ from debtsim.report.run_view import RunView
 
 __all__ = ["TOP_CONTRIBUTORS", "contribution_section"]
 
+
+def _amount(x: float, currency: str) -> str:
+    """Format an amount with the book's currency, escaped (the currency is user text)."""
+    return esc(money(x, currency))
+
+
 #: Obligors shown in the top-contributors chart and table.
 TOP_CONTRIBUTORS = 15
 
@@ -39,8 +45,8 @@ def contribution_section(analysis: RunView) -> str:
              f"<p>Each obligor's share of the book's risk (Euler allocation: the shares add up "
              f"to the book's figure). Contagion — defaults dragged in along links — carries "
              f"<b>{percent(share)}</b> of the expected shortfall at "
-             f"{esc(level_label(top))} ({money(contagion_es, currency)} of "
-             f"{money(es_total, currency)}). Every figure per obligor is in "
+             f"{esc(level_label(top))} ({_amount(contagion_es, currency)} of "
+             f"{_amount(es_total, currency)}). Every figure per obligor is in "
              "<code>contributions.csv</code>, by sector in <code>sectors.csv</code>.</p>"]
     order = np.argsort(-es, kind="stable")[:TOP_CONTRIBUTORS]
     labels = [str(table["id"].iloc[i]) for i in order]
@@ -58,11 +64,11 @@ def contribution_section(analysis: RunView) -> str:
     ))
     rows = "".join(
         f"<tr><td>{esc(str(table['id'].iloc[i]))}</td><td>{esc(str(table['sector'].iloc[i]))}"
-        f"</td><td class='n'>{money(float(es[i]), currency)}</td>"
+        f"</td><td class='n'>{_amount(float(es[i]), currency)}</td>"
         f"<td class='n'>{percent(float(es[i]) / es_total if es_total else None)}</td>"
-        f"<td class='n'>{money(float(el[i]), currency)}</td>"
-        f"<td class='n'>{money(float(table[ec_col].iloc[i]), currency)}</td>"
-        f"<td class='n'>{money(float(table['irb_capital'].iloc[i]), currency)}</td></tr>"
+        f"<td class='n'>{_amount(float(el[i]), currency)}</td>"
+        f"<td class='n'>{_amount(float(table[ec_col].iloc[i]), currency)}</td>"
+        f"<td class='n'>{_amount(float(table['irb_capital'].iloc[i]), currency)}</td></tr>"
         for i in order
     )
     parts.append(

@@ -13,6 +13,8 @@ import pytest
 from debtsim import risk
 from debtsim.book.records import Book, Link, Obligor
 from debtsim.distribution import LossDistribution
+from debtsim.engines.allocation import run_with_contributions
+from debtsim.engines.exact.engine import ExactEngine
 from debtsim.errors import DebtsimError, OutputError
 from debtsim.link_effects import contagion_effect, link_transmission, obligor_contagion, rank_links
 from debtsim.model.factor_grid import gauss_hermite
@@ -71,9 +73,14 @@ def make_analysis(
     book = book or Book("Example Mutual - trade desk", "EUR", OBLIGORS, LINKS, source="b.yaml")
     dist = dist or _law(book, links=True)
     cd = _law(book, links=False) if copula else None
+    model = LinkedFactorModel.from_book(book)
+    # contributions of the exact engine on the same 8 nodes (equal to enumeration to 1e-10)
+    _, allocation = run_with_contributions(ExactEngine(factor_grid=gauss_hermite(8)), model,
+                                           LEVELS)
     return RunResult(
+        allocation=allocation,
         book=book,
-        model=LinkedFactorModel.from_book(book),
+        model=model,
         options=RunOptions(levels=LEVELS, copula=copula),
         engine=engine,
         engine_reason="chosen for the test",
@@ -176,8 +183,8 @@ def test_obligors_csv_rows_and_columns(written: Path, analysis: RunResult) -> No
     with open(written / "obligors.csv", encoding="utf-8") as fh:
         header = next(csv.reader(fh))
     assert tuple(header) == OBLIGOR_COLUMNS
-    assert header[:9] == ["id", "name", "sector", "ead", "pd", "lgd", "asset_correlation",
-                          "default_probability", "expected_loss"]
+    assert header[:10] == ["id", "name", "sector", "ead", "pd", "lgd", "asset_correlation",
+                           "maturity", "default_probability", "expected_loss"]
     assert [r["id"] for r in rows] == ["A1", "B7", "C3"]
     dp = analysis.loss_distribution.default_probability
     for i, (r, o) in enumerate(zip(rows, OBLIGORS, strict=True)):
@@ -197,7 +204,7 @@ def test_html_is_self_contained_with_caution(written: Path) -> None:
     assert not re.search(r"""(src|href)\s*=\s*["']?\s*(https?:)?//""", page, re.I)
     assert "<script" not in page.lower() and "<link" not in page.lower()
     assert "http://" not in page and "https://" not in page
-    assert page.count("data:image/png;base64,") == 4
+    assert page.count("data:image/png;base64,") == 6  # 4 run charts, 2 contribution charts
     assert CAUTION in page.replace("&#x27;", "'")
     assert "Acerbi" in page and "Most contagious links" in page
 

@@ -61,6 +61,7 @@ def _options(
     seed: int,
     shots: int | None,
     copula: bool,
+    contributions: bool = True,
 ) -> RunOptions:
     return RunOptions(
         engine=engine,
@@ -69,6 +70,7 @@ def _options(
         shots=shots,
         levels=validate_levels(levels, name="levels"),
         copula=copula,
+        contributions=contributions,
     )
 
 
@@ -81,6 +83,7 @@ def run(
     seed: int = DEFAULT_SEED,
     shots: int | None = None,
     copula: bool = True,
+    contributions: bool = True,
     progress: ProgressFactory | None = None,
 ) -> RunResult:
     """Compute the loss distribution of ``book`` and its risk measures.
@@ -104,6 +107,9 @@ def run(
     copula : bool
         Also compute the same book without links (Gaussian copula), so the
         difference is contagion alone.
+    contributions : bool
+        Also allocate the risk to the obligors (``RunResult.contributions``,
+        ``contributions.csv``); not available for the circuit engine with shots.
     progress : callable, optional
         ``progress(stage)`` returns a ``hook(done, total)`` or None.
 
@@ -111,7 +117,7 @@ def run(
     -------
     RunResult
         ``measures.var[0.999]``, ``loss_distribution.to_frame()``,
-        ``obligors`` (a DataFrame), ``write(out_dir)``.
+        ``obligors`` and ``contributions`` (DataFrames), ``write(out_dir)``.
 
     Raises
     ------
@@ -119,7 +125,7 @@ def run(
         For an option out of range, or an engine that cannot run the book
         (:class:`~debtsim.errors.EngineRefusedError`).
     """
-    options = _options(engine, levels, samples, seed, shots, copula)
+    options = _options(engine, levels, samples, seed, shots, copula, contributions)
     return run_book(book, options, progress)
 
 

@@ -577,7 +577,8 @@ def run_sweep(
     )
     reused = {k: done[k] for k in keys if k in done and done[k].get("status") == STATUS_OK}
     todo = [
-        PointTask(key, _full(p), replace(options, seed=point_seed(options.seed, p), copula=False))
+        PointTask(key, _full(p), replace(options, seed=point_seed(options.seed, p), copula=False,
+                                         contributions=False))
         for key, p in zip(keys, points, strict=True)
         if key not in reused
     ]

@@ -167,3 +167,29 @@ def test_large_homogeneous_book_approaches_vasicek_contribution() -> None:
         errors.append(abs(alloc.expected_shortfall[0][0] - limit) / limit)
     assert errors[1] < 0.01  # granularity: O(1/n) away from the limit
     assert errors[1] < errors[0]
+
+
+@pytest.mark.parametrize("base", [0.5, 1.0])
+@pytest.mark.parametrize("name", ["three-cycle with tail", "figure eight"])
+def test_group_removal_by_series_and_by_fft_agree_with_brute_force(
+    name: str, base: float, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Both ways of removing a linked group from a node's law give the enumerated ES parts.
+
+    base 0.5: the inverse-PGF series wherever it converges; 1.0: always the spectra.
+    Reference: tests/reference.py.
+    """
+    import debtsim.engines.exact.contributions as ec
+
+    monkeypatch.setattr(ec, "_SERIES_MIN_BASE", base)
+    book = CYCLE_BOOKS[name]
+    grid = gauss_hermite(8)
+    engine = ExactEngine(factor_grid=grid)
+    alloc, dist = _allocation(engine, book)
+    assert dist.settings["loss_support"] != "atoms"
+    ref = _reference(book, grid.nodes, grid.weights)
+    tol = 1e-10 * ref["book"][("es", LEVELS[-1])]
+    for j, a in enumerate(LEVELS):
+        np.testing.assert_allclose(alloc.expected_shortfall[j], ref[("es", a)], rtol=0, atol=tol)
+        np.testing.assert_allclose(alloc.var_contagion[j],
+                                   ref[("var", a)] - ref[("own_var", a)], rtol=0, atol=tol)

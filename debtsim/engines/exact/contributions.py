@@ -606,41 +606,48 @@ def _grid_pass(
                     _group_terms(acc, g, glaw, forced, w, rb, np.zeros_like(rb), rw, rest_mean,
                                  pos.astype(float))
                 continue
-            singles_law, _ = grid_law(cls_k, p, window, count=cls_count.astype(float))
-            spectra = []
-            for pos_u, merged in zip(glaws.positions, glaws.merged, strict=True):
-                folded = np.bincount(np.mod(pos_u, width), weights=merged[at], minlength=width)
-                spectra.append(sfft.rfft(folded))
-            base = sfft.rfft(singles_law)
-            n_g = len(groups)
-            prefix = [base]
-            for s in spectra[:-1]:
-                prefix.append(prefix[-1] * s)
-            suffix = [np.ones_like(base)] * n_g
-            for gi in range(n_g - 2, -1, -1):
-                suffix[gi] = suffix[gi + 1] * spectra[gi + 1]
+            wide_rel = (wide_points - window.start).astype(float)
+            fft_rest: list[FloatArray] | None = None
             for gi, g in enumerate(groups):
-                rest = sfft.irfft(prefix[gi] * suffix[gi], width)
-                c2 = np.concatenate(([0.0], np.cumsum(np.concatenate((rest, rest)))))
                 pos = group_pos[gi]
-                b = np.mod(-pos, width)
+                pos_u = glaws.positions[gi]
+                series = _rest_by_series(glaws.merged[gi][at], pos_u, lookup,
+                                         np.concatenate([rel, wide_rel]), span, width)
+                if series is not None:
+                    f_u, a_u = series
+                    state_u = np.searchsorted(pos_u, pos)
+                    rb = f_u[:lev, state_u]
+                    ra = a_u[:lev, state_u]
+                    rw = f_u[2 * lev :, state_u] - f_u[lev : 2 * lev, state_u]
+                else:
+                    if fft_rest is None:
+                        fft_rest = _rest_laws_by_fft(
+                            grid_law(cls_k, p, window, count=cls_count.astype(float))[0],
+                            [(pu, merged[at]) for pu, merged in zip(
+                                glaws.positions, glaws.merged, strict=True)],
+                            width,
+                        )
+                    rest = fft_rest[gi]
+                    c2 = np.concatenate(([0.0], np.cumsum(np.concatenate((rest, rest)))))
+                    b = np.mod(-pos, width)
 
-                def rest_cdf(v_rel: float, b: IntArray = b, c2: FloatArray = c2,
-                             width: int = width) -> FloatArray:
-                    if v_rel < 0:
-                        return np.zeros(b.size)
-                    if v_rel >= width:
-                        return np.ones(b.size) * c2[width]
-                    vi = int(v_rel)
-                    return c2[b + vi + 1] - c2[b]
+                    def rest_cdf(v_rel: float, b: IntArray = b, c2: FloatArray = c2,
+                                 width: int = width) -> FloatArray:
+                        if v_rel < 0:
+                            return np.zeros(b.size)
+                        if v_rel >= width:
+                            return np.ones(b.size) * c2[width]
+                        vi = int(v_rel)
+                        return c2[b + vi + 1] - c2[b]
 
-                rb = np.stack([rest_cdf(float(v)) for v in rel])
-                ra = np.stack([
-                    rest[np.mod(int(v) - pos, width)] if 0 <= v < width else np.zeros(pos.size)
-                    for v in rel
-                ])
-                wb = np.stack([rest_cdf(float(v)) for v in (wide_points - window.start)])
-                rw = wb[lev:] - wb[:lev]
+                    rb = np.stack([rest_cdf(float(v)) for v in rel])
+                    ra = np.stack([
+                        rest[np.mod(int(v) - pos, width)] if 0 <= v < width
+                        else np.zeros(pos.size)
+                        for v in rel
+                    ])
+                    wb = np.stack([rest_cdf(float(v)) for v in wide_rel])
+                    rw = wb[lev:] - wb[:lev]
                 own_g = own_all[j : j + 1, g.members]
                 glaw = _group_state_law(g, own_g)[0]
                 forced = [f[0] for f in _forced_laws(g, own_g)]
@@ -656,3 +663,94 @@ def _grid_pass(
     for matrix in (acc.atom, acc.atom_own):
         matrix[:, o] += c_atom[:, co]
     acc.window[:, o] += c_window[:, co]
+
+
+#: The series is used when the group's no-loss probability exceeds this (``theta <= 1/3``).
+_SERIES_MIN_BASE = 0.75
+
+
+def _rest_by_series(
+    prob: FloatArray,
+    positions: IntArray,
+    lookup: Lookup,
+    points: FloatArray,
+    span: tuple[float, float],
+    width: int,
+) -> tuple[FloatArray, FloatArray] | None:
+    """CDF and atoms of ``L - K_g`` at ``x - k`` for each point ``x`` and group loss ``k``.
+
+    The group's factor of the conditional PGF is ``Q(x) = sum_k P(K_g = k) x^k``
+    with ``q0 = P(K_g = 0) > 1/2``; its inverse is the power series
+    ``(1 / q0) sum_r (-H)^r``, ``H = (Q - q0) / q0``, whose coefficients ``c_m``
+    have absolute sum at most ``1 / (2 q0 - 1)``.  Then ``P(L - K_g <= y) =
+    sum_m c_m P(L <= y - m)``: the group's factor removed from the law of ``L``
+    (the group analogue of the Bernoulli series).  Orders stop when the mass
+    ``theta^r`` of the next order is below :data:`SERIES_TOLERANCE`.
+
+    The series is abandoned (None) when its look-ups would cost more than
+    about ``width`` (the node window), i.e. more than the FFT route.
+
+    Returns
+    -------
+    (cdf, atom) of shape (len(points), len(positions)), or None when ``q0`` is
+    too small or the series too long (the caller uses the FFT instead).
+    """
+    if positions.size == 0 or positions[0] != 0:
+        return None
+    q0 = float(prob[0])
+    if q0 <= _SERIES_MIN_BASE:
+        return None
+    h_pos = positions[1:]
+    h_coef = -prob[1:] / q0
+    theta = float(np.sum(np.abs(h_coef)))
+    reach = float(np.max(points)) - span[0]  # c_m beyond this meets P(L <= y - m) = 0
+    keep_pos = [np.zeros(1, dtype=np.int64)]
+    keep_coef = [np.array([1.0 / q0])]
+    term_pos, term_coef = keep_pos[0], keep_coef[0]
+    mass = 1.0 / q0
+    total = 1
+    while h_pos.size and mass * theta > SERIES_TOLERANCE:
+        cand_pos = (term_pos[:, None] + h_pos[None, :]).ravel()
+        cand_coef = (term_coef[:, None] * h_coef[None, :]).ravel()
+        inside = cand_pos <= reach
+        if not inside.any():
+            break
+        uniq, inverse = np.unique(cand_pos[inside], return_inverse=True)
+        term_pos = uniq
+        term_coef = np.bincount(inverse.ravel(), weights=cand_coef[inside])
+        mass = float(np.sum(np.abs(term_coef)))
+        total += term_pos.size
+        if total * positions.size * points.size > 4 * width:
+            return None
+        keep_pos.append(term_pos)
+        keep_coef.append(term_coef)
+    all_pos = np.concatenate(keep_pos)
+    all_coef = np.concatenate(keep_coef)
+    # x - k - m for every point, group loss k and coefficient m
+    shifts = positions[:, None] + all_pos[None, :]  # (U, M)
+    cdf = np.empty((points.size, positions.size))
+    atom = np.empty((points.size, positions.size))
+    for i, x in enumerate(points.tolist()):
+        f, a = lookup((x - shifts).ravel().astype(float))
+        cdf[i] = f.reshape(shifts.shape) @ all_coef
+        atom[i] = a.reshape(shifts.shape) @ all_coef
+    return cdf, atom
+
+
+def _rest_laws_by_fft(
+    singles: FloatArray, groups: Sequence[tuple[IntArray, FloatArray]], width: int
+) -> list[FloatArray]:
+    """Law of the book without each group, on the node's window (cyclic, by spectra)."""
+    spectra = [
+        sfft.rfft(np.bincount(np.mod(pos, width), weights=prob, minlength=width))
+        for pos, prob in groups
+    ]
+    base = sfft.rfft(singles)
+    n_g = len(groups)
+    prefix = [base]
+    for spec in spectra[:-1]:
+        prefix.append(prefix[-1] * spec)
+    suffix = [np.ones_like(base)] * n_g
+    for gi in range(n_g - 2, -1, -1):
+        suffix[gi] = suffix[gi + 1] * spectra[gi + 1]
+    return [sfft.irfft(prefix[gi] * suffix[gi], width) for gi in range(n_g)]

@@ -59,3 +59,19 @@ def test_run_result_contributions_and_files(tmp_path) -> None:
     assert 0 < block["contagion_share"]["expected_shortfall_0.999"] < 1
     assert block["by_linked_group"][0]["obligors"] == ["N0", "N1"]
     assert "Where the tail comes from" in (out / "report.html").read_text()
+
+
+
+def test_sector_books_run_without_contributions(tmp_path) -> None:
+    """A sector-factor book runs and writes its report; it has no allocation (None).
+
+    The moments condition on one Gaussian factor, so they are not applied to sector models.
+    """
+    from tests.engines.test_exact_sectors import BOOK, with_sectors
+
+    book = with_sectors(BOOK, {"a": 0.5, "b": 0.7, "c": 0.9})
+    result = debtsim.run(book, engine="exact", copula=False)
+    assert result.allocation is None and result.contributions is None
+    out = result.write(tmp_path / "run")
+    assert not (out / "contributions.csv").exists()
+    assert json.loads((out / "summary.json").read_text())["contributions"] is None

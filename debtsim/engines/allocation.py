@@ -18,11 +18,13 @@ def run_with_contributions(
     levels: Sequence[float],
     *,
     progress: ProgressHook | None = None,
-) -> tuple[LossDistribution, Allocation]:
+) -> tuple[LossDistribution, Allocation | None]:
     """Compute the loss law of ``model`` and every obligor's risk contributions.
 
     ``exact`` and shot-free ``circuit`` are exact on their factor nodes;
     ``sample`` estimates from its scenarios with batch-means standard errors.
+    Models with sector factors or Student-t dependence get the law and no
+    allocation (None): the moments condition on one Gaussian factor only.
 
     Raises
     ------
@@ -33,6 +35,8 @@ def run_with_contributions(
     from debtsim.engines.exact.engine import ExactEngine
     from debtsim.engines.sample.engine import SampleEngine
 
+    if model.dependence is not None:
+        return engine.run(model, progress=progress), None
     if isinstance(engine, SampleEngine):
         from debtsim.engines.sample.contributions import sample_contributions
 

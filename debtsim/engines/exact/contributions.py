@@ -687,8 +687,8 @@ def _rest_by_series(
     (the group analogue of the Bernoulli series).  Orders stop when the mass
     ``theta^r`` of the next order is below :data:`SERIES_TOLERANCE`.
 
-    The series is abandoned (None) when its look-ups would cost more than
-    about ``width`` (the node window), i.e. more than the FFT route.
+    The series is abandoned (None) once its look-ups would exceed half the
+    node window ``width``: beyond that the FFT route is cheaper.
 
     Returns
     -------
@@ -720,7 +720,7 @@ def _rest_by_series(
         term_coef = np.bincount(inverse.ravel(), weights=cand_coef[inside])
         mass = float(np.sum(np.abs(term_coef)))
         total += term_pos.size
-        if total * positions.size * points.size > 4 * width:
+        if total * positions.size * points.size > width // 2:
             return None
         keep_pos.append(term_pos)
         keep_coef.append(term_coef)

@@ -100,6 +100,7 @@ def _stress_summary(result: StressResult, marker: str, source: str) -> dict[str,
             }
             for s, folder, a in zip(result.scenarios, result.folders, result.runs, strict=True)
         ],
+        "failed_scenarios": [{"name": name, "error": why} for name, why in result.failures],
     }
 
 

@@ -86,7 +86,10 @@ def render_stress_page(result: StressResult) -> str:
         f"{len(book.obligors):,} obligors, {len(book.links):,} links · base and "
         f"{len(names) - 1} stress scenarios · amounts in {cur or 'the book currency'}"
     )
-    warnings = []
+    warnings = [
+        f"Scenario “{name}” failed and is left out of this comparison: {why}"
+        for name, why in result.failures
+    ]
     for name, run in zip(names, runs, strict=True):
         warnings += [f"Scenario “{name}”: {note}" for note in run.notes]
 

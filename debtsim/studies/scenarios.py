@@ -216,7 +216,7 @@ class Scenario:
 
     @classmethod
     def from_values(cls, name: str, values: Mapping[str, float]) -> Scenario:
-        """A scenario named ``name`` setting global fields (:data:`GLOBAL_FIELDS`) to ``values``.
+        """Build a scenario named ``name`` setting global fields to ``values``.
 
         Raises
         ------

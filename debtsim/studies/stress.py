@@ -55,6 +55,10 @@ class StressResult:
         See :func:`default_probability_table`.
     contribution_movers : pandas.DataFrame or None
         See :func:`contribution_movers`.
+    failures : tuple of (str, str)
+        ``(scenario name, reason)`` of each scenario whose run failed (e.g. a
+        shift that breaks a sector correlation matrix); the others are in
+        ``scenarios``/``runs`` and the tables.
     execution : str
         Where the runs went.
     seconds : float
@@ -71,6 +75,7 @@ class StressResult:
     contribution_movers: pd.DataFrame | None
     execution: str
     seconds: float
+    failures: tuple[tuple[str, str], ...] = ()
 
     @property
     def folders(self) -> tuple[str, ...]:
@@ -290,15 +295,16 @@ def run_stress(
     Raises
     ------
     DebtsimError
-        When any run fails (e.g. the requested engine refuses a stressed
-        book); the message names the scenario.
+        When the base run fails, or every scenario does; the message names
+        them.  A scenario that fails while others finish is listed in
+        :attr:`StressResult.failures` instead.
 
     """
     started = time.perf_counter()
     execution = execution or Execution()
     runs = (Scenario(name=BASE_NAME), *scenarios)
     results: list[dict[str, Any] | None] = [None] * len(runs)
-    errors: list[str] = []
+    errors: dict[int, str] = {}
     done = 0
     if progress is not None:
         progress(0, len(runs))
@@ -311,7 +317,7 @@ def run_stress(
                 if isinstance(outcome, DebtsimError)
                 else (f"{type(outcome).__name__}: {outcome}")
             )
-            errors.append(f"scenario {runs[index].name!r}: {text}")
+            errors[index] = text
         else:
             results[index] = outcome
         done += 1
@@ -319,17 +325,22 @@ def run_stress(
             progress(done, len(runs))
 
     run_tasks(_evaluate, book, [(s, options) for s in runs], execution, on_result)
-    if errors:
-        raise DebtsimError("; ".join(errors))
+    if 0 in errors or (errors and len(errors) == len(runs) - 1 and len(runs) > 1):
+        raise DebtsimError(
+            "; ".join(f"scenario {runs[i].name!r}: {text}" for i, text in sorted(errors.items()))
+        )
+    failures = tuple((runs[i].name, text) for i, text in sorted(errors.items()))
+    kept = tuple(s for i, s in enumerate(runs) if i not in errors)
     analyses = tuple(
         _rebuild(book, s, options, data)
         for s, data in zip(runs, results, strict=True)
         if data is not None
     )
-    names = [s.name for s in runs]
+    names = [s.name for s in kept]
     return StressResult(
+        failures=failures,
         book=book,
-        scenarios=runs,
+        scenarios=kept,
         runs=analyses,
         options=options,
         table=scenario_table(names, analyses, options.levels),

@@ -103,14 +103,32 @@ def test_grid_option_accepts_the_new_axes() -> None:
     assert grid == {"degrees_of_freedom": [4.0, 8.0, 30.0], "sector_loading_shift": [-0.1, 0.1]}
 
 
-def test_stress_names_the_scenario_whose_shift_breaks_the_matrix() -> None:
-    """A stress run reports the failing scenario and why; the other scenarios were computed."""
-    from debtsim.errors import DebtsimError
-
+def test_stress_scenario_breaking_the_matrix_fails_alone(tmp_path: Path) -> None:
+    """A PSD-breaking scenario is listed as failed with the reason; the others finish."""
     book = replace(matrix_book(0.5), obligors=demo().obligors[:12], links=())
     scenarios = [
         Scenario(name="fine", sector_loading_shift=0.1),
         Scenario(name="broken", sector_loading_shift=-0.9),
     ]
+    result = debtsim.stress(book, scenarios, engine="sample", samples=2000, copula=False)
+    assert list(result.table["scenario"]) == ["base", "fine"]
+    assert [name for name, _ in result.failures] == ["broken"]
+    assert "not positive semi-definite" in result.failures[0][1]
+    out = debtsim.write_stress(result, tmp_path / "s")
+    import json
+
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["failed_scenarios"][0]["name"] == "broken"
+    page = (out / "report.html").read_text()
+    assert "broken" in page and "failed" in page
+    assert {p.name for p in out.iterdir()} >= {"base", "fine"}
+
+
+def test_stress_fails_whole_when_every_scenario_fails() -> None:
+    """With nothing left to compare, the stress run is an error naming the scenario."""
+    from debtsim.errors import DebtsimError
+
+    book = replace(matrix_book(0.5), obligors=demo().obligors[:12], links=())
     with pytest.raises(DebtsimError, match="scenario 'broken': .*not positive semi-definite"):
-        debtsim.stress(book, scenarios, engine="sample", samples=2000)
+        debtsim.stress(book, [Scenario(name="broken", sector_loading_shift=-0.9)],
+                       engine="sample", samples=2000)

@@ -169,7 +169,7 @@ def test_csv_in_subfolder_messages_use_joined_path(in_tmp: Path) -> None:
     rows = "".join(f"F{i},,,100,0.01,0.4,0.1\n" for i in range(15)) + "F15,,,100,1.5,0.4,0.1\n"
     write(in_tmp, "scenarios/data/obligors.csv", HEADER + rows)
     assert problems("scenarios/book.yaml") == [
-        "scenarios/data/obligors.csv:17: obligors[15] (id 'F15').pd: must be between 0 and 1, got 1.5"
+        "scenarios/data/obligors.csv:17: obligors[15] (id 'F15').pd: must be between 0 and 1, got 1.5"  # noqa: E501
     ]
 
 

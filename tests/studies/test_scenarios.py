@@ -176,7 +176,10 @@ BAD_CASES = [
     ("- name: ''\n", "f.yaml:1: scenarios[0].name: must be non-empty text"),
     ("- name: Base\n", "f.yaml:1: scenarios[0].name: 'base' is reserved"),
     ("- name: Dry Year\n- name: dry-year\n", "f.yaml:2: scenarios[1].name: 'dry-year' clashes"),
-    ("- name: x\n  pd_scale: 2\n  pd_scale: 3\n", "f.yaml:3: scenarios[0].pd_scale: given twice (first at line 2)"),
+    (
+        "- name: x\n  pd_scale: 2\n  pd_scale: 3\n",
+        "f.yaml:3: scenarios[0].pd_scale: given twice (first at line 2)",
+    ),
     (
         "- name: x\n  sectors:\n    farming: {pd_scale: 2}\n",
         "f.yaml:3: scenarios[0].sectors.farming: no obligor of the book has this sector",

@@ -70,7 +70,9 @@ class LossDistribution:
             raise ValueError("losses must be strictly ascending")
         object.__setattr__(self, "losses", _frozen(losses))
         object.__setattr__(self, "probabilities", _frozen(probs))
-        object.__setattr__(self, "default_probability", _frozen(self.default_probability))
+        # a probability: float noise above 1 or below 0 is clipped
+        dp = np.clip(np.asarray(self.default_probability, dtype=float), 0.0, 1.0)
+        object.__setattr__(self, "default_probability", _frozen(dp))
         object.__setattr__(self, "settings", MappingProxyType(dict(self.settings)))
         object.__setattr__(self, "diagnostics", MappingProxyType(dict(self.diagnostics)))
 

@@ -128,13 +128,21 @@ def obligor_contagion(book: Book, default_probability: ArrayLike) -> ObligorCont
     ObligorContagion
 
     """
-    final = _final_pd(book, default_probability)
+    final = np.clip(_final_pd(book, default_probability), 0.0, 1.0)
     own = np.array([o.pd for o in book.obligors], dtype=float)
     lgd_ead = np.array([o.ead * o.lgd for o in book.obligors], dtype=float)
+    # no link can reach an obligor that is creditor of no link with positive contagion:
+    # its uplift is 0 by construction, whatever an engine's noise
+    index = {o.id: i for i, o in enumerate(book.obligors)}
+    reachable = np.zeros(len(book.obligors), dtype=bool)
+    for link in book.links:
+        if link.contagion > 0.0 and link.creditor in index:
+            reachable[index[link.creditor]] = True
+    uplift = np.where(reachable, final - own, 0.0)
     return ObligorContagion(
         own_default_probability=own,
         default_probability=final,
-        contagion_uplift=final - own,
+        contagion_uplift=uplift,
         expected_loss=final * lgd_ead,
     )
 

@@ -173,6 +173,46 @@ class LinkedFactorModel:
             dependence=self.dependence,
         )
 
+    @cached_property
+    def reachable_by_links(self) -> NDArray[np.bool_]:
+        """Which obligors a default can reach along a link, shape (n,).
+
+        An obligor is reachable when it is the creditor of at least one link
+        with positive contagion.  An unreachable obligor defaults only on its
+        own: its final default probability is its PD, exactly, on every
+        engine, and its contagion uplift is 0 by construction.
+        """
+        mask = np.zeros(self.n_obligors, dtype=bool)
+        mask[self.creditor[self.contagion > 0.0]] = True
+        mask.setflags(write=False)
+        return mask
+
+    def settle_default_probability(self, computed: FloatArray) -> FloatArray:
+        """Return final default probabilities as an engine should report them.
+
+        Clipped to ``[0, 1]`` (float noise can give ``1.0000000000000002``),
+        and equal to the PD for every obligor no link can reach
+        (:attr:`reachable_by_links`), whatever the sampling noise.  Engines
+        that integrate on factor nodes keep their own node values instead
+        (the circuit and the exact engine on the same nodes must agree);
+        their contagion uplift is zeroed where it is reported
+        (:func:`debtsim.link_effects.obligor_contagion`).
+
+        Parameters
+        ----------
+        computed : ndarray, shape (n,)
+            The engine's estimate.
+
+        Returns
+        -------
+        ndarray, shape (n,)
+
+        """
+        out = np.clip(np.asarray(computed, dtype=float), 0.0, 1.0)
+        unreachable = ~self.reachable_by_links
+        out[unreachable] = self.pd[unreachable]
+        return out
+
     # ------------------------------------------------------------------ graph
     @cached_property
     def _adjacency(self) -> sparse.csr_matrix:

@@ -93,8 +93,15 @@ def test_engine_contract(name: str) -> None:
         d = engine.run(model)
         assert d.probabilities.sum() == pytest.approx(1.0, abs=1e-12)
         assert d.losses.min() >= -1e-9 and d.losses.max() <= top * (1 + 1e-12)
-        assert d.mean == pytest.approx(float(d.default_probability @ model.loss_given_default),
-                                       rel=1e-9)
+        by_obligor = float(d.default_probability @ model.loss_given_default)
+        if d.samples is None:
+            assert d.mean == pytest.approx(by_obligor, rel=1e-9)
+        else:
+            # the sampler reports an unreachable obligor's PD exactly (not its sampled
+            # frequency), so the identity holds within the sampling error only
+            assert abs(d.mean - by_obligor) < 4 * d.diagnostics["expected_loss_standard_error"]
+            alone = ~model.reachable_by_links
+            assert np.array_equal(d.default_probability[alone], model.pd[alone])
 
 
 @pytest.mark.parametrize("name", list(BOOKS))

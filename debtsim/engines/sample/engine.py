@@ -613,6 +613,9 @@ class SampleEngine(Engine):
         dp_se = np.sqrt(
             np.maximum((1.0 - 2.0 * dp) * scen.default_weight_sq + dp**2 * sum_sq, 0.0)
         ) / total
+        # an obligor no link can reach defaults only on its own: its PD is known exactly
+        dp = model.settle_default_probability(dp)
+        dp_se[~model.reachable_by_links] = 0.0
         settings: dict[str, Any] = {
             "importance": plan is not None,
             "factor_shift": 0.0 if plan is None else plan.tilts[-1].tilt.shift,

@@ -31,7 +31,13 @@ from typing import Any
 from yaml.nodes import MappingNode, Node, SequenceNode
 
 from debtsim.book.dependence_section import DEPENDENCE_FIELDS, read_dependence
-from debtsim.book.records import DEFAULT_FACTOR_QUBITS, Book, Link, Obligor
+from debtsim.book.records import (
+    DEFAULT_FACTOR_QUBITS,
+    MAX_ASSET_CORRELATION,
+    Book,
+    Link,
+    Obligor,
+)
 from debtsim.book.yaml_reader import (
     ProblemSink,
     Raw,
@@ -218,6 +224,11 @@ def _correlation_test(x: float) -> str | None:
         return "must be at least 0"
     if x >= 1:
         return "must be less than 1"
+    if x > MAX_ASSET_CORRELATION:
+        return (
+            f"must be at most {MAX_ASSET_CORRELATION:g} (closer to 1 the default is a step in "
+            "the factor that no engine resolves)"
+        )
     return None
 
 
@@ -272,7 +283,7 @@ def _fast_obligor(cells: dict[str, str], line: int) -> Obligor | None:
         and 0 < ead <= MAX_EAD
         and 0 < pd < 1
         and 0 <= lgd <= 1
-        and 0 <= rho < 1
+        and 0 <= rho <= MAX_ASSET_CORRELATION
         and 1 <= maturity <= 5
     ):
         name = cells.get("name", "").strip()

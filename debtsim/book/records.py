@@ -10,10 +10,16 @@ from dataclasses import dataclass, field
 
 from debtsim.book.dependence import DependenceSpec
 
-__all__ = ["DEFAULT_FACTOR_QUBITS", "Book", "Link", "Obligor"]
+__all__ = ["DEFAULT_FACTOR_QUBITS", "MAX_ASSET_CORRELATION", "Book", "Link", "Obligor"]
 
 #: Factor resolution used when the book does not set ``model.factor_qubits``.
 DEFAULT_FACTOR_QUBITS = 5
+
+#: Largest asset correlation a book or a stress may give.  Closer to 1 an obligor's
+#: conditional PD is a step in the factor so sharp that the exact engine's grid would
+#: need tens of thousands of nodes and the circuit's fixed nodes cannot place it; no
+#: portfolio calibration comes near (the Basel IRB formulas give at most 0.30).
+MAX_ASSET_CORRELATION = 0.999
 
 
 @dataclass(frozen=True, slots=True)

@@ -35,7 +35,7 @@ from typing import Any
 
 from yaml.nodes import MappingNode, Node, SequenceNode
 
-from debtsim.book.records import Book, Link, Obligor
+from debtsim.book.records import MAX_ASSET_CORRELATION, Book, Link, Obligor
 from debtsim.book.yaml_reader import (
     ProblemSink,
     YamlReader,
@@ -68,8 +68,7 @@ __all__ = [
 #: Name of the unstressed run; reserved, a scenario may not use it.
 BASE_NAME = "base"
 
-#: Stressed asset correlations are clipped to ``[0, MAX_ASSET_CORRELATION]``.
-MAX_ASSET_CORRELATION = 0.999
+# Stressed asset correlations are clipped to ``[0, MAX_ASSET_CORRELATION]`` (the book's limit).
 
 #: Global numeric fields of a scenario, also the parameters a sweep may vary.
 GLOBAL_FIELDS: tuple[str, ...] = (

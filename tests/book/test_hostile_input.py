@@ -278,3 +278,18 @@ def test_scenario_hostile_yaml(tmp_path: Path) -> None:
     path.write_text(bomb, encoding="utf-8")
     (outcome,) = finishes(lambda: scenario_problems(path))
     assert isinstance(outcome, list) and outcome[0].startswith("s.yaml:1: a: unknown field")
+
+
+# ------------------------------------------------------------- a book that passes check runs
+@pytest.mark.parametrize("rho", ["0.9995", "0.99999", "0.999999999"])
+def test_asset_correlation_next_to_one_is_refused_by_check(tmp_path: Path, rho: str) -> None:
+    """Correlations between 0.999 and 1, which no engine resolves, are a validation problem."""
+    book = tmp_path / "b.yaml"
+    book.write_text(
+        f"obligors:\n  - {{id: A, ead: 1, pd: 0.01, lgd: 0.4, asset_correlation: {rho}}}\n",
+        encoding="utf-8",
+    )
+    assert problems(book) == [
+        "b.yaml:2: obligors[0] (id 'A').asset_correlation: must be at most 0.999 (closer to 1 "
+        f"the default is a step in the factor that no engine resolves), got {rho}"
+    ]

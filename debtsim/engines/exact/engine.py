@@ -156,6 +156,7 @@ class ExactEngine(Engine):
         self.factor_grid = factor_grid
         self.sector_grid = sector_grid
         self.mixing_grid = mixing_grid
+        self._grid_cache: tuple[LinkedFactorModel, FactorGrid] | None = None
         self.factor_resolution = float(factor_resolution)
         self.factor_order = int(factor_order)
         self.grid_points = int(grid_points)
@@ -168,13 +169,18 @@ class ExactEngine(Engine):
 
     # ------------------------------------------------------------ refusal
     def refusal(self, model: LinkedFactorModel) -> str | None:
-        """Refuse books with a linked group too large to enumerate."""
+        """Refuse books with a linked group too large to enumerate, or too sharp to grid."""
         if model.dependence is not None:
             from debtsim.engines.exact.sector_law import sector_refusal
 
             reason = sector_refusal(model, _linked_groups(model))
             if reason is not None:
                 return reason
+        elif self.factor_grid is None:
+            try:
+                self._grid_for(model)
+            except ValueError as exc:
+                return f"{exc} (asset correlations very close to 1); use --engine sample"
         if model.n_links == 0:
             return None
         largest = max(model.components, key=len)
@@ -195,6 +201,15 @@ class ExactEngine(Engine):
         return None
 
     # ------------------------------------------------------------ factor grid
+    def _grid_for(self, model: LinkedFactorModel) -> FactorGrid:
+        """Return the default grid of ``model``, built once per model (refusal, then run)."""
+        cached = self._grid_cache
+        if cached is not None and cached[0] is model:
+            return cached[1]
+        grid = self.default_factor_grid(model)
+        self._grid_cache = (model, grid)
+        return grid
+
     def default_factor_grid(self, model: LinkedFactorModel) -> FactorGrid:
         """Tail-dense composite Gauss–Legendre grid for ``model``.
 
@@ -260,7 +275,7 @@ class ExactEngine(Engine):
             raise EngineRefusedError(reason)
         if model.dependence is not None:
             return self._run_sectors(model, progress)
-        grid = self.factor_grid if self.factor_grid is not None else self.default_factor_grid(model)
+        grid = self.factor_grid if self.factor_grid is not None else self._grid_for(model)
         groups = _linked_groups(model)
         in_group = np.zeros(model.n_obligors, dtype=bool)
         for g in groups:

@@ -26,7 +26,7 @@ from debtsim.book.loader import (
     REQUIRED_OBLIGOR_FIELDS,
     load_book,
 )
-from debtsim.book.records import DEFAULT_FACTOR_QUBITS, Book, Link, Obligor
+from debtsim.book.records import DEFAULT_FACTOR_QUBITS, MAX_ASSET_CORRELATION, Book, Link, Obligor
 from debtsim.errors import BookError, Problem
 
 BOOKS = Path(__file__).resolve().parents[1] / "books"
@@ -828,7 +828,7 @@ def books(
             ead=draw(st.floats(0, 1e15, exclude_min=True)),
             pd=draw(st.floats(0, 1, exclude_min=True, exclude_max=True)),
             lgd=draw(unit),
-            asset_correlation=draw(st.floats(0, 1, exclude_max=True)),
+            asset_correlation=draw(st.floats(0, MAX_ASSET_CORRELATION)),
             name=draw(text),
             sector=draw(text),
             maturity=draw(st.floats(1, 5)),

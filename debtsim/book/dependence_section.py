@@ -25,15 +25,21 @@ import io
 import math
 import os
 from collections.abc import Callable, Sequence
-from pathlib import Path
 from typing import Any, Protocol
 
 import numpy as np
-import yaml
 from yaml.constructor import SafeConstructor
-from yaml.nodes import MappingNode, Node, ScalarNode, SequenceNode
+from yaml.nodes import MappingNode, Node, ScalarNode
 
 from debtsim.book.dependence import DEFAULT_SECTOR_QUBITS, DEPENDENCE_FAMILIES, DependenceSpec
+from debtsim.book.yaml_reader import (
+    ProblemSink,
+    line_of,
+    node_value,
+    quote,
+    read_text_file,
+    shown,
+)
 
 __all__ = [
     "DEPENDENCE_FIELDS",
@@ -79,35 +85,15 @@ _constructor = SafeConstructor()
 
 def _value(node: Node) -> tuple[str, Any]:
     """Return ``(kind, value)``: kind ``scalar``, ``tagged``, ``list`` or ``mapping``."""
-    if isinstance(node, MappingNode):
-        return "mapping", None
-    if isinstance(node, SequenceNode):
-        return "list", None
-    assert isinstance(node, ScalarNode)
-    try:
-        return "scalar", _constructor.construct_object(node, deep=True)
-    except yaml.YAMLError:
-        return "tagged", None
+    raw = node_value(node, _constructor)
+    return raw.kind, raw.value
 
 
 def _shown_node(node: Node) -> str:
-    kind, value = _value(node)
-    if kind == "list":
-        return "a list"
-    if kind == "mapping":
-        return "a mapping"
-    if kind == "tagged":
-        return f"a value tagged {str(node.tag).replace('tag:yaml.org,2002:', '!!')}"
-    text = str(node.value)
-    if value is None:
-        return "nothing" if text in ("", "~") else text
-    if isinstance(value, str):
-        return repr(text if len(text) <= _MAX_SHOWN else text[: _MAX_SHOWN - 3] + "...")
-    return text if len(text) <= _MAX_SHOWN else repr(text[: _MAX_SHOWN - 3] + "...")
+    return shown(node_value(node, _constructor))
 
 
-def _line(node: Node) -> int:
-    return int(node.start_mark.line) + 1
+_line = line_of
 
 
 def _number_text(text: str) -> float | None:
@@ -143,8 +129,7 @@ def _pairs(node: MappingNode) -> list[tuple[str, Node, Node]]:
     return list(out.values())
 
 
-def _quote(text: str) -> str:
-    return repr(text if len(text) <= _MAX_SHOWN else text[: _MAX_SHOWN - 3] + "...")
+_quote = quote
 
 
 # ---------------------------------------------------------------- matrix
@@ -214,21 +199,12 @@ def _matrix_from_csv(
     ``named_at`` is the (book file, line) naming the CSV, where a missing or
     unreadable file is reported.
     """
-    try:
-        data = Path(path).read_bytes()
-    except FileNotFoundError:
-        report(named_at[0], named_at[1], field, f"CSV file not found: {path}")
-        return None
-    except OSError as exc:
-        report(
-            named_at[0], named_at[1], field, f"cannot read CSV file {path}: {exc.strerror or exc}"
-        )
-        return None
-    try:
-        text = data.decode("utf-8-sig")
-    except UnicodeDecodeError as exc:
-        line = data[: exc.start].count(b"\n") + 1
-        report(path, line, field, f"CSV file is not UTF-8 text (byte 0x{data[exc.start]:02x})")
+    # the one reader's guards: a regular file of a size that fits, UTF-8 text
+    sink = ProblemSink()
+    text = read_text_file(path, sink, (named_at[0], named_at[1], field), kind="csv")
+    for problem in sink.problems:
+        report(problem.file, problem.line, problem.field, problem.message)
+    if text is None:
         return None
     reader = csv.reader(io.StringIO(text, newline=""), strict=True)
     rows: list[tuple[int, list[str]]] = []

@@ -37,6 +37,7 @@ __all__ = [
     "is_absent",
     "join_field",
     "line_of",
+    "node_value",
     "number",
     "quote",
     "read_text_file",
@@ -359,6 +360,31 @@ def compose_yaml(text: str, file: str, sink: ProblemSink) -> Node | None:
     return None
 
 
+def node_value(node: Node, constructor: SafeConstructor | None = None) -> Raw:
+    """Return the value of ``node`` with its line; scalars built by the safe constructor.
+
+    A tag the safe constructor refuses (``!!python/object``) gives kind
+    ``"tagged"``, never an object; an integer of more digits than Python
+    converts keeps its text (it then fails a number's check as not finite).
+    """
+    line = node.start_mark.line + 1
+    if isinstance(node, MappingNode):
+        return Raw("mapping", None, "", line)
+    if isinstance(node, SequenceNode):
+        return Raw("list", None, "", line)
+    if not isinstance(node, ScalarNode):  # pragma: no cover - PyYAML has three node kinds
+        return Raw("tagged", None, str(node.tag), line)
+    try:
+        value = (constructor or SafeConstructor()).construct_object(node, deep=True)
+    except yaml.YAMLError:  # an unknown tag such as !!python/object
+        return Raw("tagged", None, str(node.tag), line)
+    except (ValueError, OverflowError):
+        # an integer of more digits than Python converts, an impossible date: keep the
+        # text, which then fails (or passes) the field's own check
+        return Raw("scalar", str(node.value), str(node.value), line)
+    return Raw("scalar", value, str(node.value), line)
+
+
 class YamlReader:
     """Reads values and mappings from a composed node tree, reporting problems.
 
@@ -378,22 +404,7 @@ class YamlReader:
 
     def raw(self, node: Node) -> Raw:
         """Return the value of ``node`` with its line (scalars by the safe constructor)."""
-        line = node.start_mark.line + 1
-        if isinstance(node, MappingNode):
-            return Raw("mapping", None, "", line)
-        if isinstance(node, SequenceNode):
-            return Raw("list", None, "", line)
-        if not isinstance(node, ScalarNode):  # pragma: no cover - PyYAML has three node kinds
-            return Raw("tagged", None, str(node.tag), line)
-        try:
-            value = self.constructor.construct_object(node, deep=True)
-        except yaml.YAMLError:  # an unknown tag such as !!python/object
-            return Raw("tagged", None, str(node.tag), line)
-        except (ValueError, OverflowError):
-            # an integer of more digits than Python converts, an impossible date: keep the
-            # text, which then fails (or passes) the field's own check
-            return Raw("scalar", str(node.value), str(node.value), line)
-        return Raw("scalar", value, str(node.value), line)
+        return node_value(node, self.constructor)
 
     def mapping(self, node: MappingNode, path: str) -> dict[str, tuple[Node, Node]] | None:
         """Key -> (key node, value node), reporting repeated and non-text keys.

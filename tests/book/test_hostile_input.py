@@ -293,3 +293,19 @@ def test_asset_correlation_next_to_one_is_refused_by_check(tmp_path: Path, rho: 
         "b.yaml:2: obligors[0] (id 'A').asset_correlation: must be at most 0.999 (closer to 1 "
         f"the default is a step in the factor that no engine resolves), got {rho}"
     ]
+
+
+def test_sector_correlation_csv_is_read_by_the_same_guarded_reader(tmp_path: Path) -> None:
+    """A sector-correlation table that is a pipe is refused at once, like an obligor table."""
+    os.mkfifo(tmp_path / "corr.csv")
+    (tmp_path / "b.yaml").write_text(
+        "obligors:\n"
+        "  - {id: A, ead: 1, pd: 0.01, lgd: 0.4, asset_correlation: 0.1, sector: farming}\n"
+        "model:\n  sector_correlation: corr.csv\n",
+        encoding="utf-8",
+    )
+    (outcome,) = finishes(lambda: problems(tmp_path / "b.yaml"))
+    assert outcome == [
+        "b.yaml:4: model.sector_correlation: CSV file corr.csv is not a regular file "
+        "(a device, pipe or socket)"
+    ]

@@ -8,23 +8,88 @@ written.
 
 from __future__ import annotations
 
+import math
 import sys
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
 from pathlib import Path
-from typing import TYPE_CHECKING, Annotated
+from typing import TYPE_CHECKING, Annotated, Any
 
 import typer
+from typer.core import TyperArgument, TyperCommand, TyperGroup, TyperOption
 
 from debtsim import CAUTION, BookError, DebtsimError, OptionError
+from debtsim.errors import visible
+from debtsim.options import DEFAULT_SAMPLES, DEFAULT_SEED
 
 if TYPE_CHECKING:
     from debtsim import RunResult
 
 __all__ = ["app", "main"]
 
+EXIT_INPUT = 2
+EXIT_INTERRUPTED = 130
+INTERRUPTED = "interrupted; nothing was written"
+
+
+def _plain_params(params: list[Any]) -> list[Any]:
+    """Show option types as the words of the help (N, DIR, FILE), flags with no type."""
+    for param in params:
+        if isinstance(param, TyperOption) and (param.is_flag or param.name == "help"):
+            param.metavar = ""
+        elif isinstance(param, TyperArgument):
+            param.metavar = (param.name or "").upper()
+            # the help's text says what the argument is; no "<path>" type beside it
+            setattr(param, "display_type_rich", lambda ctx: None)  # noqa: B010
+    return params
+
+
+class _Command(TyperCommand):
+    """A command whose help reads ``debtsim run [OPTIONS] BOOK``, types in plain words."""
+
+    def get_params(self, ctx: Any) -> list[Any]:
+        return _plain_params(super().get_params(ctx))
+
+    def collect_usage_pieces(self, ctx: Any) -> list[str]:
+        params = self.get_params(ctx)
+        pieces = ["[OPTIONS]"] if any(isinstance(p, TyperOption) for p in params) else []
+        for p in params:
+            if isinstance(p, TyperArgument):
+                name = str(p.metavar)
+                pieces.append(name if p.required else f"[{name}]")
+        return pieces
+
+
+class _Group(TyperGroup):
+    """The ``debtsim`` group: every error one line on stderr, Ctrl-C exits 130."""
+
+    def get_params(self, ctx: Any) -> list[Any]:
+        return _plain_params(super().get_params(ctx))
+
+    def main(self, *args: Any, standalone_mode: bool = True, **kwargs: Any) -> Any:
+        try:
+            code = super().main(*args, standalone_mode=False, **kwargs)
+        except typer.TyperException as error:  # a usage error found by the parser
+            if type(error).__name__ == "NoArgsIsHelpError":
+                typer.echo(error.format_message())  # type: ignore[attr-defined]
+                code = 0
+            else:
+                ctx = getattr(error, "ctx", None)
+                hint = f" (see '{ctx.command_path} --help')" if ctx is not None else ""
+                message = visible(str(error.format_message()))  # type: ignore[attr-defined]
+                typer.echo(f"error: {message}{hint}", err=True)
+                code = EXIT_INPUT
+        except typer.Abort:
+            typer.echo(INTERRUPTED, err=True)
+            code = EXIT_INTERRUPTED
+        if not standalone_mode:
+            return code
+        sys.exit(code if isinstance(code, int) else 0)
+
+
 app = typer.Typer(
+    cls=_Group,
     name="debtsim",
     help=(
         "Credit-portfolio loss with default contagion between obligors that lend to each "
@@ -35,7 +100,25 @@ app = typer.Typer(
     pretty_exceptions_enable=False,
 )
 
-EXIT_INPUT = 2
+
+def _version(value: bool) -> None:
+    if value:
+        from debtsim.output_files import generator
+
+        typer.echo(generator())
+        raise typer.Exit()
+
+
+@app.callback()
+def _main_options(
+    version: Annotated[
+        bool,
+        typer.Option(
+            "--version", callback=_version, is_eager=True, help="Print the version and exit."
+        ),
+    ] = False,
+) -> None:
+    """Credit-portfolio loss with default contagion between obligors that lend to each other."""
 
 
 #: Keyword option of the library -> the command-line flag that sets it.
@@ -52,6 +135,7 @@ def fail(error: DebtsimError) -> None:
     else:
         lines = [str(error)]
     for line in lines:
+        line = visible(line)  # book text may hold terminal control sequences
         typer.echo(f"error: {line}" if not isinstance(error, BookError) else line, err=True)
     raise typer.Exit(EXIT_INPUT)
 
@@ -66,6 +150,9 @@ def progress_bars(enabled: bool) -> Iterator[Callable[[str], Callable[[int, int]
     from rich.progress import BarColumn, Progress, TaskID, TextColumn, TimeRemainingColumn
 
     console = Console(stderr=True)
+    if not console.is_terminal:  # a redirected stderr gets no bars (and no stray line)
+        yield lambda stage: None
+        return
     with Progress(
         TextColumn("{task.description}"),
         BarColumn(),
@@ -92,35 +179,59 @@ def progress_bars(enabled: bool) -> Iterator[Callable[[str], Callable[[int, int]
 
 
 # ------------------------------------------------ options shared by run, stress and sweep
-BookArg = Annotated[Path, typer.Argument(help="Book file (YAML).")]
-EngineOpt = Annotated[str, typer.Option("--engine", help="auto, exact, circuit or sample.")]
+BookArg = Annotated[Path, typer.Argument(help="Book file (YAML).", show_default=False)]
+EngineOpt = Annotated[
+    str,
+    typer.Option(
+        "--engine", metavar="NAME", show_default=False,
+        help="auto (default: the first that applies of exact, circuit, sample), exact "
+        "(semi-analytic on a factor grid), circuit (quantum-circuit statevector) or sample "
+        "(Monte Carlo of the cascade).",
+    ),
+]
 SamplesOpt = Annotated[
-    int | None, typer.Option("--samples", min=1, help="Scenarios for the sample engine.")
+    int | None,
+    typer.Option(
+        "--samples", metavar="N",
+        help=f"Scenarios for the sample engine (default: {DEFAULT_SAMPLES:,}).",
+    ),
+]
+SeedOpt = Annotated[
+    int | None,
+    typer.Option(
+        "--seed", metavar="N",
+        help=f"Seed for random draws, 0 or more (default: {DEFAULT_SEED}).",
+    ),
 ]
 LevelOpt = Annotated[
     list[float] | None,
-    typer.Option("--level", help="Confidence level (repeatable) (default: 0.99 0.999)."),
+    typer.Option(
+        "--level", metavar="P",
+        help="Confidence level, between 0 and 1; repeat for several (default: 0.99 and "
+        "0.999).",
+    ),
 ]
 ShotsOpt = Annotated[
     int | None,
     typer.Option(
-        "--shots", min=1,
-        help="Circuit engine: sample N measurements instead of the exact statevector law.",
+        "--shots", metavar="N",
+        help="Circuit engine: sample N measurements instead of the exact statevector law "
+        "(at most what the free memory holds).",
     ),
 ]
 CompareOpt = Annotated[
     bool,
     typer.Option(
-        "--compare-without-links/--no-compare-without-links",
+        "--compare-without-links/--no-compare-without-links", show_default=False,
         help="Also run the same book without links (Gaussian copula), so the difference "
-        "is contagion alone.",
+        "is contagion alone (default: on).",
     ),
 ]
 QuietOpt = Annotated[bool, typer.Option("--quiet", "-q", help="No progress, no summary.")]
 WorkersOpt = Annotated[
     int | None,
     typer.Option(
-        "--workers", min=1,
+        "--workers", metavar="N",
         help="Run on a local Dask cluster of N worker processes (default: in-process).",
     ),
 ]
@@ -133,17 +244,17 @@ SchedulerOpt = Annotated[
 ]
 
 
-def _out_option(default: str) -> object:
-    return typer.Option("--out", help=f"Output folder (default: {default}).")
+def _out_option(default: str) -> Any:
+    return typer.Option("--out", metavar="DIR", help=f"Output folder (default: {default}).")
 
 
-@app.command()
+@app.command(cls=_Command)
 def run(
     book: BookArg,
     out: Annotated[Path | None, _out_option("reports/<book stem>/")] = None,
     engine: EngineOpt = "auto",
     samples: SamplesOpt = None,
-    seed: Annotated[int | None, typer.Option("--seed", help="Seed for random draws.")] = None,
+    seed: SeedOpt = None,
     level: LevelOpt = None,
     shots: ShotsOpt = None,
     compare_without_links: CompareOpt = True,
@@ -166,34 +277,80 @@ def run(
     except debtsim.DebtsimError as error:
         fail(error)
         return
+    except KeyboardInterrupt:
+        typer.echo(INTERRUPTED, err=True)
+        raise typer.Exit(EXIT_INTERRUPTED) from None
+    _warn(result.notes)
     if not quiet:
         _print_run(result, final)
 
 
+def _warn(notes: Sequence[str]) -> None:
+    """Print each model warning on stderr as one ``warning:`` line."""
+    for note in notes:
+        typer.echo(f"warning: {visible(note)}", err=True)
+
+
+def _standard_error(diagnostics: Mapping[str, Any], name: str, level: float | None) -> float | None:
+    """Return a figure's standard error from an engine's diagnostics, or None (exact)."""
+    value: Any = diagnostics.get(name)
+    if level is not None and isinstance(value, Mapping):
+        value = value.get(level, value.get(str(float(level))))
+    if isinstance(value, bool) or not isinstance(value, int | float):
+        return None
+    return float(value) if math.isfinite(value) else None
+
+
+def _figure(value: float, error: float | None, currency: str) -> str:
+    """``1,234.56 EUR`` for an exact figure, ``1,235 ± 12 EUR`` for an estimated one."""
+    unit = f" {currency}" if currency else ""
+    if error is None:
+        return f"{value:,.2f}{unit}"
+    # as many decimals as the error's first two significant digits need
+    digits = max(0, 1 - math.floor(math.log10(error))) if error > 0 else 2
+    return f"{value:,.{digits}f} ± {error:,.{digits}f}{unit}"
+
+
 def _print_run(result: RunResult, folder: Path) -> None:
     m = result.measures
-    cur = result.book.currency
+    cur = visible(result.book.currency)
+    diag = result.diagnostics
+    sampled = result.loss_distribution.samples is not None
+
+    def se(name: str, level: float | None = None) -> float | None:
+        return _standard_error(diag, name, level) if sampled else None
+
     lines = [
-        f"{result.book.name}: {result.model.n_obligors} obligors, "
+        f"{visible(result.book.name)}: {result.model.n_obligors} obligors, "
         f"{result.model.n_links} links, engine {result.engine} ({result.engine_reason})",
-        f"  expected loss      {m.expected_loss:,.2f} {cur}",
-        f"  loss std           {m.loss_std:,.2f} {cur}",
+        f"  expected loss      {_figure(m.expected_loss, se('expected_loss_standard_error'), cur)}",
+        f"  loss std           {_figure(m.loss_std, None, cur)}",
     ]
     for a in m.levels:
-        lines.append(
-            f"  VaR {a!s:<7}        {m.var[a]:,.2f} {cur}   ES {m.expected_shortfall[a]:,.2f}"
-        )
-    if result.copula_measures is not None:
+        var = _figure(m.var[a], se("var_standard_error", a), cur)
+        es = _figure(m.expected_shortfall[a], se("expected_shortfall_standard_error", a), "")
+        lines.append(f"  VaR {a!s:<7}        {var}   ES {es}")
+    if result.copula_measures is not None and result.copula_distribution is not None:
         c = result.copula_measures
-        lines.append(f"  without links (Gaussian copula): EL {c.expected_loss:,.2f} {cur}")
+        cdiag = result.copula_distribution.diagnostics
+        csampled = result.copula_distribution.samples is not None
+
+        def cse(name: str, level: float | None = None) -> float | None:
+            return _standard_error(cdiag, name, level) if csampled else None
+
+        el = _figure(c.expected_loss, cse("expected_loss_standard_error"), cur)
+        lines.append(f"  without links (Gaussian copula): EL {el}")
         for a in c.levels:
-            lines.append(f"    VaR {a!s:<7}        {c.var[a]:,.2f} {cur}")
+            cvar = _figure(c.var[a], cse("var_standard_error", a), cur)
+            lines.append(f"    VaR {a!s:<7}        {cvar}")
+    if sampled:
+        lines.append("  (± one standard error of the sampling)")
     lines.append(f"report: {folder / 'report.html'}")
     lines.append(CAUTION)
     typer.echo("\n".join(lines))
 
 
-@app.command()
+@app.command(cls=_Command)
 def check(book: BookArg) -> None:
     """Validate BOOK and print a one-screen overview; writes nothing."""
     import debtsim
@@ -203,14 +360,18 @@ def check(book: BookArg) -> None:
     except DebtsimError as error:
         fail(error)
         return
-    typer.echo(text)
+    except KeyboardInterrupt:
+        typer.echo(INTERRUPTED, err=True)
+        raise typer.Exit(EXIT_INTERRUPTED) from None
+    typer.echo("\n".join(visible(line) for line in text.splitlines()))
 
 
-@app.command()
+@app.command(cls=_Command)
 def circuit(
     book: BookArg,
     qasm: Annotated[
-        Path | None, typer.Option("--qasm", help="Write the circuit as OpenQASM 3 to FILE.")
+        Path | None,
+        typer.Option("--qasm", metavar="FILE", help="Write the circuit as OpenQASM 3 to FILE."),
     ] = None,
     force: Annotated[
         bool, typer.Option("--force", help="Overwrite an existing --qasm file.")
@@ -249,14 +410,14 @@ def circuit(
 
 
 # --------------------------------------------------------- stress and sweep
-@app.command()
+@app.command(cls=_Command)
 def stress(
     book: BookArg,
     scenarios: Annotated[Path, typer.Argument(help="Scenario file (YAML).")],
     out: Annotated[Path | None, _out_option("reports/<book stem>-stress/")] = None,
     engine: EngineOpt = "auto",
     samples: SamplesOpt = None,
-    seed: Annotated[int | None, typer.Option("--seed", help="Seed for random draws.")] = None,
+    seed: SeedOpt = None,
     level: LevelOpt = None,
     shots: ShotsOpt = None,
     compare_without_links: CompareOpt = True,
@@ -302,7 +463,7 @@ def stress(
     typer.echo("\n".join(line for line in lines if line))
 
 
-@app.command()
+@app.command(cls=_Command)
 def sweep(
     book: BookArg,
     grid: Annotated[
@@ -318,7 +479,10 @@ def sweep(
     samples: SamplesOpt = None,
     seed: Annotated[
         int | None,
-        typer.Option("--seed", help="Base seed; each grid point derives its own from it."),
+        typer.Option(
+            "--seed", metavar="N",
+            help=f"Base seed; each grid point derives its own from it (default: {DEFAULT_SEED}).",
+        ),
     ] = None,
     level: LevelOpt = None,
     shots: ShotsOpt = None,

@@ -26,6 +26,7 @@ from yaml.constructor import SafeConstructor
 from yaml.nodes import MappingNode, Node, ScalarNode, SequenceNode
 
 from debtsim.errors import Problem, describe_os_error
+from debtsim.resources import available_memory
 
 __all__ = [
     "MAX_CSV_BYTES",
@@ -209,18 +210,6 @@ def join_field(prefix: str, name: str) -> str:
 
 
 # ---------------------------------------------------------------- files
-def _available_memory() -> int | None:
-    """Bytes of memory available to a new allocation (Linux), or None when unknown."""
-    try:
-        with open("/proc/meminfo", encoding="ascii") as fh:
-            for line in fh:
-                if line.startswith("MemAvailable:"):
-                    return int(line.split()[1]) * 1024
-    except (OSError, ValueError, IndexError):
-        return None
-    return None
-
-
 def _size_problem(path: str, size: int, kind: str) -> str | None:
     """Why a file of ``size`` bytes is too large to read, or None."""
     if kind == "yaml":
@@ -232,7 +221,7 @@ def _size_problem(path: str, size: int, kind: str) -> str | None:
         hint = "; put large tables of obligors and links in CSV files" if kind == "yaml" else ""
         limit = f"{cap / 2**20:,.0f} MB"
         return f"is {mib:,.0f} MB, more than the {limit} a {kind.upper()} file may have{hint}"
-    available = _available_memory()
+    available = available_memory()
     if available is not None and size * factor > available:
         return (
             f"is {mib:,.0f} MB; reading it needs about {size * factor / 2**30:,.1f} GB of "

@@ -39,7 +39,7 @@ def make_engine(name: str, options: RunOptions) -> Engine:
     if name == "circuit":
         from debtsim.engines.circuit.engine import CircuitEngine
 
-        return CircuitEngine(shots=options.shots, seed=options.seed)
+        return CircuitEngine(shots=options.shots, seed=options.seed, levels=tuple(options.levels))
     if name == "sample":
         from debtsim.engines.sample.engine import SampleEngine
 

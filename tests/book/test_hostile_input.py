@@ -162,7 +162,7 @@ def test_book_that_would_exceed_memory_is_refused(
     tmp_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
     """A file whose reading needs more memory than is free is refused, naming both sizes."""
-    monkeypatch.setattr(yaml_reader, "_available_memory", lambda: 2**20)
+    monkeypatch.setattr(yaml_reader, "available_memory", lambda: 2**20)
     book = tmp_path / "b.yaml"
     book.write_text("book: x\n" + "#" * 100_000 + "\n", encoding="utf-8")
     (line,) = problems(book)
@@ -177,7 +177,7 @@ def test_available_memory_is_read() -> None:
     """On Linux the free memory is known (the guard is not silently off)."""
     if not Path("/proc/meminfo").exists():  # pragma: no cover - not Linux
         pytest.skip("no /proc/meminfo")
-    free = yaml_reader._available_memory()
+    free = yaml_reader.available_memory()
     assert free is not None and free > 0
 
 

@@ -273,12 +273,14 @@ def sweep(
                 progress=progress,
             )
         return _sweep_frame(result, None)
+    from debtsim.output_files import exclusive_output
     from debtsim.report.study_folders import write_sweep
 
-    result = run_sweep(
-        book, axes, options, out, execution=execution, resume=resume, progress=progress
-    )
-    return _sweep_frame(result, write_sweep(result, out))
+    with exclusive_output(out):  # a second sweep to the same folder is refused
+        result = run_sweep(
+            book, axes, options, out, execution=execution, resume=resume, progress=progress
+        )
+        return _sweep_frame(result, write_sweep(result, out))
 
 
 def _sweep_frame(result: SweepResult, folder: Path | None) -> pd.DataFrame:

@@ -22,6 +22,7 @@ from typer.core import TyperArgument, TyperCommand, TyperGroup, TyperOption
 from debtsim import CAUTION, BookError, DebtsimError, OptionError
 from debtsim.errors import visible
 from debtsim.options import DEFAULT_SAMPLES, DEFAULT_SEED
+from debtsim.output_files import check_output_file, write_text_atomic
 
 if TYPE_CHECKING:
     from debtsim import RunResult
@@ -382,8 +383,8 @@ def circuit(
 
     try:
         loaded = debtsim.load_book(book)
-        if qasm is not None and qasm.exists() and not force:
-            raise DebtsimError(f"--qasm: {qasm} exists; pass --force to overwrite it")
+        if qasm is not None:
+            check_output_file(qasm, overwrite=force, option="--qasm")
         report = debtsim.circuit_report(loaded)
         text = report.qasm() if qasm is not None else None
     except DebtsimError as error:
@@ -403,9 +404,10 @@ def circuit(
         f"{verdict}"
     )
     if qasm is not None and text is not None:
-        tmp = qasm.with_name(f".{qasm.name}.tmp")
-        tmp.write_text(text, encoding="utf-8")
-        tmp.replace(qasm)
+        try:
+            write_text_atomic(qasm, text, option="--qasm")
+        except DebtsimError as error:
+            fail(error)
         typer.echo(f"OpenQASM 3 written to {qasm}")
 
 
@@ -510,6 +512,7 @@ def sweep(
     try:
         axes = debtsim.grid_from_options(grid or [])
         loaded = debtsim.load_book(book)
+        debtsim.check_output_dir(out_dir)
         with progress_bars(not quiet) as progress:
             hook = progress("grid points")
 

@@ -36,8 +36,10 @@ __all__ = [
     "OWN_FILES",
     "atomic_output_dir",
     "check_output_dir",
+    "check_output_file",
     "clean_leftovers",
     "exchange_paths",
+    "exclusive_output",
     "foreign_entries",
     "generator",
     "is_replaceable_output",
@@ -46,6 +48,7 @@ __all__ = [
     "write_csv",
     "write_json",
     "write_loss_distribution",
+    "write_text_atomic",
 ]
 
 #: File whose JSON object marks a folder as written by debtsim.
@@ -515,6 +518,127 @@ def _commit(tmp: Path, out_dir: Path, replaceable: Callable[[Path], bool]) -> No
         else:
             with contextlib.suppress(OSError):
                 backup.unlink()
+
+
+@contextlib.contextmanager
+def exclusive_output(out_dir: Path | str) -> Iterator[None]:
+    """Hold ``out_dir`` for this process: a second writer of the same folder is refused.
+
+    A lock on the hidden file ``.<name>.lock`` beside the folder
+    (``fcntl.flock``: released by the system when the process ends, even when
+    killed).  The lock file is removed on exit; a writer that opened it just
+    before the removal notices the file it locked is no longer the one at the
+    path and tries again.  Where ``fcntl`` is missing (Windows) nothing is
+    locked.
+
+    Raises
+    ------
+    OutputError
+        When another process holds the folder, or the lock file cannot be made.
+
+    """
+    try:
+        import fcntl
+    except ImportError:  # pragma: no cover - not POSIX
+        yield
+        return
+    out_dir = Path(out_dir)
+    parent = out_dir.parent
+    try:
+        parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(f"cannot write to {out_dir}: {describe_os_error(exc)}") from exc
+    lock = parent / f".{out_dir.name[:200]}.lock"
+    while True:
+        try:
+            fd = os.open(lock, os.O_RDWR | os.O_CREAT, 0o644)
+        except OSError as exc:
+            raise OutputError(f"cannot write to {out_dir}: {describe_os_error(exc)}") from exc
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            os.close(fd)
+            raise OutputError(
+                f"{out_dir}: another debtsim process is writing this folder; wait for it to "
+                "finish or choose another --out"
+            ) from None
+        try:
+            same = os.fstat(fd).st_ino == os.stat(lock).st_ino
+        except FileNotFoundError:
+            same = False
+        if same:
+            break
+        os.close(fd)  # locked a file just removed by the previous holder: try again
+    try:
+        yield
+    finally:
+        with contextlib.suppress(OSError):
+            os.unlink(lock)
+        os.close(fd)
+
+
+# ------------------------------------------------------------------ one file
+def check_output_file(path: Path | str, *, overwrite: bool = False, option: str = "") -> Path:
+    """Refuse, before any computing, a file path a command cannot or must not write.
+
+    Parameters
+    ----------
+    path : Path or str
+        The file to be written.
+    overwrite : bool
+        Whether an existing file may be replaced.
+    option : str
+        The command-line option naming the path (``--qasm``), for messages.
+
+    Returns
+    -------
+    Path
+
+    Raises
+    ------
+    OutputError
+        When the path is a folder, its folder is missing or not writable, or
+        the file exists and ``overwrite`` is false; in plain words.
+
+    """
+    path = Path(path)
+    label = f"{option}: " if option else ""
+    if path.is_dir():
+        raise OutputError(f"{label}{path} is a folder; give the name of a file to write")
+    if (path.exists() or path.is_symlink()) and not overwrite:
+        raise OutputError(f"{label}{path} exists; pass --force to overwrite it")
+    parent = path.parent
+    if not parent.is_dir():
+        missing = "is not a folder" if parent.exists() else "does not exist"
+        raise OutputError(f"{label}cannot write to {path}: the folder {parent} {missing}")
+    _probe_writable(parent, path)
+    return path
+
+
+def write_text_atomic(path: Path | str, text: str, *, option: str = "") -> Path:
+    """Write a text file atomically: a hidden temporary file renamed into place.
+
+    A failure (read-only file system, disk full) leaves no temporary file and
+    the previous file, if any, unchanged.
+
+    Raises
+    ------
+    OutputError
+        With the reason in plain words.
+
+    """
+    path = Path(path)
+    label = f"{option}: " if option else ""
+    tmp = path.with_name(f".{path.name[:100]}.tmp-{os.getpid()}-{secrets.token_hex(4)}")
+    try:
+        with open(tmp, "x", encoding="utf-8") as fh:
+            fh.write(text)
+        os.replace(tmp, path)
+    except OSError as exc:
+        with contextlib.suppress(OSError):
+            tmp.unlink()
+        raise OutputError(f"{label}cannot write to {path}: {describe_os_error(exc)}") from exc
+    return path
 
 
 # ------------------------------------------------------------------ the files

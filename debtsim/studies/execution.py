@@ -18,7 +18,14 @@ from typing import Any, TypeVar
 
 from debtsim.errors import DebtsimError
 
-__all__ = ["Execution", "dask_client", "run_tasks", "single_blas_thread"]
+__all__ = [
+    "SCHEDULER_TIMEOUT",
+    "Execution",
+    "check_scheduler_address",
+    "dask_client",
+    "run_tasks",
+    "single_blas_thread",
+]
 
 T = TypeVar("T")
 R = TypeVar("R")
@@ -46,6 +53,8 @@ class Execution:
             raise DebtsimError("--workers and --scheduler exclude each other; give one")
         if self.workers is not None and self.workers < 1:
             raise DebtsimError(f"--workers: must be at least 1, got {self.workers}")
+        if self.scheduler is not None:
+            check_scheduler_address(self.scheduler)
 
     @property
     def in_process(self) -> bool:
@@ -64,6 +73,98 @@ class Execution:
         return "in-process"
 
 
+#: Seconds to wait for a Dask scheduler to connect and answer.
+SCHEDULER_TIMEOUT = 20.0
+
+#: Address schemes a scheduler may use here, and why the others are refused.
+_SCHEMES = {
+    "tcp": None,
+    "inproc": None,
+    "tls": "tls:// needs TLS certificates (a Dask security configuration), which debtsim "
+    "does not set up; use tcp:// (for example through an SSH tunnel)",
+    "ucx": "ucx:// needs the UCX transport (ucx-py and a GPU network), which debtsim does "
+    "not use; use tcp://",
+    "ws": "ws:// is not supported; use tcp://",
+    "wss": "wss:// is not supported; use tcp://",
+}
+
+
+def check_scheduler_address(address: str) -> str:
+    """Refuse a scheduler address debtsim cannot use, before anything runs.
+
+    Parameters
+    ----------
+    address : str
+        ``tcp://host:port`` or ``host:port``.
+
+    Returns
+    -------
+    str
+        The address.
+
+    Raises
+    ------
+    DebtsimError
+        For an unsupported scheme (``tls://``, ``ucx://``...), a missing port or
+        an empty address, in one line.
+
+    """
+    text = address.strip()
+    scheme, sep, rest = text.partition("://")
+    if not sep:
+        scheme, rest = "tcp", text
+    scheme = scheme.lower()
+    if scheme not in _SCHEMES:
+        raise DebtsimError(
+            f"--scheduler: unknown address scheme {scheme + '://'!r} in {address!r}; "
+            "use tcp://host:port"
+        )
+    reason = _SCHEMES[scheme]
+    if reason is not None:
+        raise DebtsimError(f"--scheduler: {reason}")
+    if scheme == "tcp":
+        host, colon, port = rest.rpartition(":")
+        if not colon or not host or not port.isdigit() or not 0 < int(port) < 65536:
+            raise DebtsimError(
+                f"--scheduler: {address!r} must be host:port (e.g. tcp://10.0.0.5:8786)"
+            )
+    return text
+
+
+def _connect(address: str, seconds: float) -> Any:
+    """Connect a ``distributed.Client``, giving up after ``seconds`` whatever the peer does.
+
+    The client's own timeout covers a peer that refuses or is silent before
+    the connection; a peer that accepts and then never answers would block
+    its handshake for good, so the attempt runs in a helper thread that is
+    abandoned when the time is up.
+    """
+    from distributed import Client
+
+    box: dict[str, Any] = {}
+
+    def attempt() -> None:
+        try:
+            box["client"] = Client(address, timeout=f"{seconds}s")
+        except BaseException as error:  # noqa: BLE001 - handed to the caller's thread
+            box["error"] = error
+
+    thread = threading.Thread(target=attempt, name="debtsim-connect", daemon=True)
+    thread.start()
+    thread.join(seconds + 5.0)
+    if thread.is_alive():
+        raise DebtsimError(
+            f"--scheduler: {address} accepted the connection but did not answer within "
+            f"{seconds:g} s; is a Dask scheduler listening there?"
+        )
+    if "error" in box:
+        error = box["error"]
+        if isinstance(error, OSError | TimeoutError | ValueError | TypeError):
+            raise DebtsimError(f"--scheduler: cannot connect to {address}: {error}") from error
+        raise error
+    return box["client"]
+
+
 @contextlib.contextmanager
 def dask_client(execution: Execution) -> Iterator[Any]:
     """Open a ``distributed.Client`` for ``execution``, closed (with its cluster) on exit.
@@ -77,12 +178,7 @@ def dask_client(execution: Execution) -> Iterator[Any]:
     from distributed import Client, LocalCluster
 
     if execution.scheduler is not None:
-        try:
-            client = Client(execution.scheduler, timeout="20s")
-        except (OSError, TimeoutError, ValueError) as error:
-            raise DebtsimError(
-                f"--scheduler: cannot connect to {execution.scheduler}: {error}"
-            ) from error
+        client = _connect(execution.scheduler, SCHEDULER_TIMEOUT)
         try:
             yield client
         finally:

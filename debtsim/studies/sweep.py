@@ -598,7 +598,13 @@ def run_sweep(
         if on_point is not None:
             on_point(record)
 
-    run_tasks(evaluate_point, book, todo, execution, on_result)
+    try:
+        run_tasks(evaluate_point, book, todo, execution, on_result)
+    except BaseException:
+        # nothing finished (e.g. the scheduler never answered): leave no work folder behind
+        if not any((work / "points").iterdir()):
+            shutil.rmtree(work, ignore_errors=True)
+        raise
     table = _table(axes, points, keys, results, options.levels)
     return SweepResult(
         book=book,

@@ -42,6 +42,8 @@ _EXPORTS: dict[str, str] = {
     "CircuitReport": "debtsim.api",
     "grid_from_options": "debtsim.api",
     "check_output_dir": "debtsim.api",
+    "check_output_file": "debtsim.api",
+    "write_text_atomic": "debtsim.api",
     "partial_dir": "debtsim.api",
     # records and results
     "Book": "debtsim.book.records",
@@ -68,6 +70,8 @@ _EXPORTS: dict[str, str] = {
     "Problem": "debtsim.errors",
     "DebtsimWarning": "debtsim.errors",
     "DiscretisationWarning": "debtsim.errors",
+    "describe_os_error": "debtsim.errors",
+    "visible": "debtsim.errors",
 }
 
 __all__ = [
@@ -96,8 +100,10 @@ __all__ = [
     "Scenario",
     "StressResult",
     "check_output_dir",
+    "check_output_file",
     "circuit_report",
     "describe_book",
+    "describe_os_error",
     "grid_from_options",
     "load_book",
     "load_scenarios",
@@ -105,7 +111,9 @@ __all__ = [
     "run",
     "stress",
     "sweep",
+    "visible",
     "write_stress",
+    "write_text_atomic",
 ]
 
 
@@ -127,6 +135,7 @@ if TYPE_CHECKING:  # the names as static checkers see them
     from debtsim.api import (
         CircuitReport,
         check_output_dir,
+        check_output_file,
         circuit_report,
         describe_book,
         grid_from_options,
@@ -137,6 +146,7 @@ if TYPE_CHECKING:  # the names as static checkers see them
         stress,
         sweep,
         write_stress,
+        write_text_atomic,
     )
     from debtsim.book.records import Book, Link, Obligor
     from debtsim.distribution import LossDistribution
@@ -149,6 +159,8 @@ if TYPE_CHECKING:  # the names as static checkers see them
         OptionError,
         OutputError,
         Problem,
+        describe_os_error,
+        visible,
     )
     from debtsim.options import (
         DEFAULT_LEVELS,

@@ -26,7 +26,7 @@ from debtsim.book.loader import load_book
 from debtsim.book.records import Book
 from debtsim.errors import DebtsimError
 from debtsim.options import DEFAULT_LEVELS, DEFAULT_SEED, RunOptions, validate_levels
-from debtsim.output_files import check_output_dir
+from debtsim.output_files import check_output_dir, check_output_file, write_text_atomic
 from debtsim.runner import ProgressFactory, RunResult, run_book
 from debtsim.studies.execution import Execution
 from debtsim.studies.scenarios import Scenario, load_scenarios
@@ -41,6 +41,7 @@ if TYPE_CHECKING:
 __all__ = [
     "CircuitReport",
     "check_output_dir",
+    "check_output_file",
     "circuit_report",
     "describe_book",
     "grid_from_options",
@@ -51,6 +52,7 @@ __all__ = [
     "stress",
     "sweep",
     "write_stress",
+    "write_text_atomic",
 ]
 
 

@@ -19,10 +19,18 @@ from typing import TYPE_CHECKING, Annotated, Any
 import typer
 from typer.core import TyperArgument, TyperCommand, TyperGroup, TyperOption
 
-from debtsim import CAUTION, BookError, DebtsimError, OptionError
-from debtsim.errors import visible
-from debtsim.options import DEFAULT_SAMPLES, DEFAULT_SEED
-from debtsim.output_files import check_output_file, write_text_atomic
+from debtsim import (
+    CAUTION,
+    DEFAULT_SAMPLES,
+    DEFAULT_SEED,
+    BookError,
+    DebtsimError,
+    OptionError,
+    check_output_file,
+    describe_os_error,
+    visible,
+    write_text_atomic,
+)
 
 if TYPE_CHECKING:
     from debtsim import RunResult
@@ -84,6 +92,13 @@ class _Group(TyperGroup):
         except typer.Abort:
             typer.echo(INTERRUPTED, err=True)
             code = EXIT_INTERRUPTED
+        except OSError as error:  # the last resort: an environment error is not a traceback
+            where = f"{error.filename}: " if error.filename else ""
+            typer.echo(f"error: {visible(where + describe_os_error(error))}", err=True)
+            code = EXIT_INPUT
+        except MemoryError:
+            typer.echo("error: out of memory; try a smaller book or fewer samples", err=True)
+            code = EXIT_INPUT
         if not standalone_mode:
             return code
         sys.exit(code if isinstance(code, int) else 0)
@@ -462,7 +477,7 @@ def stress(
     lines.append(f"amounts in {cur}" if cur else "")
     lines.append(f"report: {final / 'report.html'}   table: {final / 'scenarios.csv'}")
     lines.append(CAUTION)
-    typer.echo("\n".join(line for line in lines if line))
+    typer.echo("\n".join(visible(line) for line in lines if line))
 
 
 @app.command(cls=_Command)
@@ -552,7 +567,7 @@ def sweep(
         lines.append(f"  first failure: {first}")
     lines.append(f"table: {final / 'sweep.csv'}   report: {final / 'report.html'}")
     lines.append(CAUTION)
-    typer.echo("\n".join(lines))
+    typer.echo("\n".join(visible(line) for line in lines))
 
 
 def main() -> None:

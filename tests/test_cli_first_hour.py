@@ -544,3 +544,27 @@ def test_ctrl_c_in_a_real_process(tmp_path: Path) -> None:
     assert proc.returncode == 130, err
     assert err.strip().splitlines()[-1] == "interrupted; nothing was written"
     assert sorted(p.name for p in tmp_path.iterdir()) == ["big.yaml"]
+
+
+def test_disk_full_during_a_sweep_is_one_line(
+    runner: CliRunner, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A full disk while a sweep saves its points is an error line, not a traceback."""
+    from debtsim.studies import sweep as sweep_module
+
+    real = sweep_module._write_json_atomic
+
+    def full(path: Path, data: object) -> None:
+        if "points" in str(path):
+            raise OSError(errno.ENOSPC, "No space left on device", str(path))
+        real(path, data)  # type: ignore[arg-type]
+
+    monkeypatch.setattr(sweep_module, "_write_json_atomic", full)
+    result = runner.invoke(
+        app, ["sweep", str(HARBOUR), "--grid", "pd_scale=1,2", "--out", str(tmp_path / "o")]
+    )
+    assert result.exit_code == 2
+    line = one_error_line(result.stderr)
+    assert line.startswith("error: ") and line.endswith(": no space left on the device")
+    assert "Traceback" not in result.stderr
+    assert list(tmp_path.iterdir()) == []

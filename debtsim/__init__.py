@@ -79,6 +79,7 @@ __all__ = [
     "CAUTION",
     "Book",
     "BookError",
+    "CAUTION",
     "CircuitReport",
     "DEFAULT_LEVELS",
     "DEFAULT_SAMPLES",

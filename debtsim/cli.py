@@ -76,17 +76,32 @@ class _Group(TyperGroup):
     def get_params(self, ctx: Any) -> list[Any]:
         return _plain_params(super().get_params(ctx))
 
-    def main(self, *args: Any, standalone_mode: bool = True, **kwargs: Any) -> Any:
+    def main(
+        self,
+        args: Sequence[str] | None = None,
+        prog_name: str | None = None,
+        complete_var: str | None = None,
+        standalone_mode: bool = True,
+        windows_expand_args: bool = True,
+        **extra: Any,
+    ) -> Any:
         try:
-            code = super().main(*args, standalone_mode=False, **kwargs)
+            code = super().main(
+                args=args,
+                prog_name=prog_name,
+                complete_var=complete_var,
+                standalone_mode=False,
+                windows_expand_args=windows_expand_args,
+                **extra,
+            )
         except typer.TyperException as error:  # a usage error found by the parser
             if type(error).__name__ == "NoArgsIsHelpError":
-                typer.echo(error.format_message())  # type: ignore[attr-defined]
+                typer.echo(error.format_message())
                 code = 0
             else:
                 ctx = getattr(error, "ctx", None)
                 hint = f" (see '{ctx.command_path} --help')" if ctx is not None else ""
-                message = visible(str(error.format_message()))  # type: ignore[attr-defined]
+                message = visible(str(error.format_message()))
                 typer.echo(f"error: {message}{hint}", err=True)
                 code = EXIT_INPUT
         except typer.Abort:
@@ -119,9 +134,9 @@ app = typer.Typer(
 
 def _version(value: bool) -> None:
     if value:
-        from debtsim.output_files import generator
+        import debtsim
 
-        typer.echo(generator())
+        typer.echo(f"debtsim {debtsim.__version__}")
         raise typer.Exit()
 
 

@@ -321,7 +321,8 @@ def compose_yaml(text: str, file: str, sink: ProblemSink) -> Node | None:
     An empty document also returns None (with nothing reported).
     """
     try:
-        return yaml.compose(text, Loader=_YamlLoader)  # type: ignore[no-any-return]
+        node: Node | None = yaml.compose(text, Loader=_YamlLoader)
+        return node
     except yaml.reader.ReaderError as exc:
         # a character YAML does not allow (a NUL byte, a control character)
         position = int(exc.position)
@@ -337,13 +338,13 @@ def compose_yaml(text: str, file: str, sink: ProblemSink) -> Node | None:
     except yaml.MarkedYAMLError as exc:
         mark = exc.problem_mark or exc.context_mark
         message = (exc.problem or exc.context or "invalid YAML").removeprefix("but ")
-        line = mark.line + 1 if mark is not None else None
+        at: int | None = mark.line + 1 if mark is not None else None
         if mark is not None:
             message += f" (column {mark.column + 1})"
         context = exc.context_mark
         if exc.problem and exc.context and context is not None:
             message += f"; {exc.context} at line {context.line + 1}"
-        sink.add(file, line, "", f"YAML syntax error: {message}")
+        sink.add(file, at, "", f"YAML syntax error: {message}")
     except yaml.YAMLError as exc:
         sink.add(file, None, "", f"YAML syntax error: {exc}")
     return None

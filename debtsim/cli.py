@@ -476,6 +476,8 @@ def stress(
     except DebtsimError as error:
         fail(error)
         return
+    for name, run_result in zip(result.table["scenario"], result.runs, strict=True):
+        _warn([f"{name}: {note}" for note in run_result.notes])
     if quiet:
         return
     table = result.table

@@ -568,3 +568,24 @@ def test_disk_full_during_a_sweep_is_one_line(
     assert line.startswith("error: ") and line.endswith(": no space left on the device")
     assert "Traceback" not in result.stderr
     assert list(tmp_path.iterdir()) == []
+
+
+def test_stress_warnings_name_their_scenario(runner: CliRunner, tmp_path: Path) -> None:
+    """A scenario whose run carries a model warning gets a warning line naming it."""
+    scenarios = tmp_path / "s.yaml"
+    scenarios.write_text("- name: steep\n  asset_correlation_shift: 0.9\n", encoding="utf-8")
+    result = runner.invoke(
+        app,
+        [
+            "stress",
+            str(HARBOUR),
+            str(scenarios),
+            "--engine",
+            "circuit",
+            "-q",
+            "--out",
+            str(tmp_path / "o"),
+        ],
+    )
+    assert result.exit_code == 0, result.stderr
+    assert one_error_line(result.stderr).startswith("warning: steep: The circuit's 32 factor")

@@ -483,14 +483,24 @@ def stress(
     table = result.table
     cur = loaded.currency
     top = table.columns[-3]
+    top_level = float(top.removeprefix("var_"))
+    sampled = any(r.loss_distribution.samples is not None for r in result.runs)
+    width = 24 if sampled else 16
     lines = [
         f"{loaded.name}: base and {len(scenario_list)} scenarios, {result.execution}, "
         f"{result.seconds:.1f} s",
-        f"  {'scenario':<24} {'expected loss':>16} {top.replace('var_', 'VaR '):>16}",
+        f"  {'scenario':<24} {'expected loss':>{width}} {top.replace('var_', 'VaR '):>{width}}",
     ]
-    for _, row in table.iterrows():
-        lines.append(f"  {str(row['scenario'])[:24]:<24} {row['expected_loss']:>16,.2f} "
-                     f"{row[top]:>16,.2f}")
+    for (_, row), run_result in zip(table.iterrows(), result.runs, strict=True):
+        estimated = run_result.loss_distribution.samples is not None
+        diag = run_result.diagnostics
+        el_se = _standard_error(diag, "expected_loss_standard_error", None) if estimated else None
+        var_se = _standard_error(diag, "var_standard_error", top_level) if estimated else None
+        el = _figure(float(row["expected_loss"]), el_se, "")
+        var = _figure(float(row[top]), var_se, "")
+        lines.append(f"  {str(row['scenario'])[:24]:<24} {el:>{width}} {var:>{width}}")
+    if sampled:
+        lines.append("  (± one standard error of the sampling)")
     lines.append(f"amounts in {cur}" if cur else "")
     lines.append(f"report: {final / 'report.html'}   table: {final / 'scenarios.csv'}")
     lines.append(CAUTION)

@@ -589,3 +589,29 @@ def test_stress_warnings_name_their_scenario(runner: CliRunner, tmp_path: Path) 
     )
     assert result.exit_code == 0, result.stderr
     assert one_error_line(result.stderr).startswith("warning: steep: The circuit's 32 factor")
+
+
+def test_stress_table_shows_sampling_errors(runner: CliRunner, tmp_path: Path) -> None:
+    """A sampled stress prints each scenario's EL and VaR with ±; an exact one without."""
+    scenarios = ROOT / "scenarios" / "harbour_small_stress.yaml"
+    sampled = runner.invoke(
+        app,
+        [
+            "stress",
+            str(HARBOUR),
+            str(scenarios),
+            "--engine",
+            "sample",
+            "--samples",
+            "3000",
+            "--out",
+            str(tmp_path / "s"),
+        ],
+    )
+    assert sampled.exit_code == 0, sampled.stderr
+    rows = [line for line in sampled.stdout.splitlines() if line.startswith("  base")]
+    assert rows and rows[0].count("±") == 2
+    exact = runner.invoke(
+        app, ["stress", str(HARBOUR), str(scenarios), "--out", str(tmp_path / "e")]
+    )
+    assert exact.exit_code == 0 and "±" not in exact.stdout

@@ -79,7 +79,6 @@ __all__ = [
     "CAUTION",
     "Book",
     "BookError",
-    "CAUTION",
     "CircuitReport",
     "DEFAULT_LEVELS",
     "DEFAULT_SAMPLES",

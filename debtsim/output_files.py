@@ -71,12 +71,15 @@ def generator() -> str:
 
 
 # ----------------------------------------------------------------- the folder
-#: Every file name a debtsim writer puts in an output folder (run, stress, sweep).
+#: Every file name a debtsim writer puts in an output folder (run, stress, sweep).  A writer
+#: that adds a file adds its name here (tests/report/test_output_folders.py checks it).
 OWN_FILES = frozenset(
     {
         "summary.json",
         "loss_distribution.csv",
         "obligors.csv",
+        "contributions.csv",
+        "sectors.csv",
         "report.html",
         "scenarios.csv",
         "default_probabilities.csv",

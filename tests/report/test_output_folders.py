@@ -307,3 +307,10 @@ def test_obligors_csv_neutralises_book_text(tmp_path: Path) -> None:
         rows = list(csv.DictReader(fh))
     assert [r["name"] for r in rows] == ["'=cmd|' /C calc'!A0", "line\rbreak"]
     assert rows[1]["sector"] == "'@risk"
+
+
+def test_every_file_a_run_writes_is_known_as_ours() -> None:
+    """The files of a run are all in OWN_FILES, so a rerun replaces its own report."""
+    from debtsim.output_files import OWN_FILES
+
+    assert set(OUTPUT_FILES) <= OWN_FILES

@@ -141,6 +141,7 @@ def stress(
     seed: int = DEFAULT_SEED,
     shots: int | None = None,
     copula: bool = True,
+    contributions: bool = True,
     workers: int | None = None,
     scheduler: str | None = None,
     progress: Callable[[int, int], None] | None = None,
@@ -153,7 +154,7 @@ def stress(
         The unstressed book.
     scenarios : sequence of Scenario
         From :func:`load_scenarios`.
-    engine, levels, samples, seed, shots, copula
+    engine, levels, samples, seed, shots, copula, contributions
         As for :func:`run`; shared by every scenario.
     workers : int, optional
         Run on a local Dask cluster of this many worker processes.
@@ -172,7 +173,7 @@ def stress(
     DebtsimError
         When an option is out of range or a scenario's run fails.
     """
-    options = _options(engine, levels, samples, seed, shots, copula)
+    options = _options(engine, levels, samples, seed, shots, copula, contributions)
     execution = Execution(workers=workers, scheduler=scheduler)
     return run_stress(book, scenarios, options, execution=execution, progress=progress)
 

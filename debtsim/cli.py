@@ -258,6 +258,15 @@ CompareOpt = Annotated[
         "is contagion alone (default: on).",
     ),
 ]
+ContributionsOpt = Annotated[
+    bool,
+    typer.Option(
+        "--contributions/--no-contributions", show_default=False,
+        help="Allocate EL, std, VaR, ES and capital to the obligors (contributions.csv, "
+        "sectors.csv); on books with many linked groups this can take many times the run "
+        "itself (default: on).",
+    ),
+]
 QuietOpt = Annotated[bool, typer.Option("--quiet", "-q", help="No progress, no summary.")]
 WorkersOpt = Annotated[
     int | None,
@@ -289,6 +298,7 @@ def run(
     level: LevelOpt = None,
     shots: ShotsOpt = None,
     compare_without_links: CompareOpt = True,
+    contributions: ContributionsOpt = True,
     quiet: QuietOpt = False,
 ) -> None:
     """Compute the loss distribution of BOOK and write the report folder."""
@@ -302,7 +312,8 @@ def run(
             result = debtsim.run(
                 loaded, engine=engine, levels=level or debtsim.DEFAULT_LEVELS,
                 samples=samples, seed=debtsim.DEFAULT_SEED if seed is None else seed,
-                shots=shots, copula=compare_without_links, progress=progress,
+                shots=shots, copula=compare_without_links, contributions=contributions,
+                progress=progress,
             )
         final = result.write(out_dir)
     except debtsim.DebtsimError as error:
@@ -453,6 +464,7 @@ def stress(
     level: LevelOpt = None,
     shots: ShotsOpt = None,
     compare_without_links: CompareOpt = True,
+    contributions: ContributionsOpt = True,
     workers: WorkersOpt = None,
     scheduler: SchedulerOpt = None,
     quiet: QuietOpt = False,
@@ -469,13 +481,15 @@ def stress(
             result = debtsim.stress(
                 loaded, scenario_list, engine=engine, levels=level or debtsim.DEFAULT_LEVELS,
                 samples=samples, seed=debtsim.DEFAULT_SEED if seed is None else seed,
-                shots=shots, copula=compare_without_links, workers=workers,
+                shots=shots, copula=compare_without_links, contributions=contributions,
+                workers=workers,
                 scheduler=scheduler, progress=progress("scenarios"),
             )
         final = debtsim.write_stress(result, out_dir, source=str(scenarios))
     except DebtsimError as error:
         fail(error)
         return
+    _warn([f"scenario {name!r} failed and is left out: {why}" for name, why in result.failures])
     for name, run_result in zip(result.table["scenario"], result.runs, strict=True):
         _warn([f"{name}: {note}" for note in run_result.notes])
     if quiet:

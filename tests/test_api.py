@@ -139,3 +139,17 @@ def test_circuit_report_exports_measured_obligors(harbour_book: debtsim.Book) ->
     assert text.startswith("OPENQASM 3")
     assert text.count("measure") == len(harbour_book.obligors)
     assert report.refusal is None and report.qubits == report.factor_qubits + report.obligors
+
+
+def test_contributions_can_be_switched_off(tmp_path: Path, harbour_path: Path) -> None:
+    """``--no-contributions`` writes the contract files without the allocation tables."""
+    out = tmp_path / "nc"
+    cli = CliRunner().invoke(app, ["run", str(harbour_path), "--no-contributions",
+                                   "--out", str(out), "-q"])
+    assert cli.exit_code == 0, cli.output
+    names = {p.name for p in out.iterdir()}
+    assert {"summary.json", "loss_distribution.csv", "obligors.csv", "report.html"} <= names
+    assert "contributions.csv" not in names
+    cli = CliRunner().invoke(app, ["run", str(harbour_path), "--out", str(out), "-q"])
+    assert cli.exit_code == 0, cli.output
+    assert (out / "contributions.csv").exists()

@@ -228,4 +228,9 @@ def model_notes(dist: LossDistribution) -> tuple[str, ...]:
             "raise model.factor_qubits or use the exact engine, which places its nodes where "
             "the conditional distribution moves."
         )
+    if dist.samples is not None and dist.diagnostics.get("expected_loss_standard_error", 0) is None:
+        notes.append(
+            f"Every one of the {dist.samples:,} sampled scenarios gave the same loss, so the "
+            "sampling error of these figures cannot be estimated; raise the number of samples."
+        )
     return tuple(notes)

@@ -71,7 +71,7 @@ def choose_engine(name: str, model: LinkedFactorModel, options: RunOptions) -> E
         reason = engine.refusal(model)
         if reason is not None:
             raise EngineRefusedError(reason)
-        return EngineChoice(engine, f"requested by name ({name})")
+        return EngineChoice(engine, "requested by name")
     refusals: list[str] = []
     for candidate in ("exact", "circuit", "sample"):
         engine = make_engine(candidate, options)

@@ -438,3 +438,15 @@ def test_twist_solver_overflow_stays_silent():
     model = make_model([5.397, 1380479.549], [1.0, 1.0], [0.3, 0.05], [0.99, 0.99])
     plan = plan_importance(model, LEVELS)  # RuntimeWarnings are errors in the test run
     assert plan is not None
+
+
+def test_error_unknown_when_every_scenario_loses_the_same() -> None:
+    """One scenario (or no loss variation) gives no standard error, and the run says so."""
+    from debtsim.options import RunOptions
+    from debtsim.runner import run_book
+
+    book = Book(name="tiny", currency="EUR", obligors=(
+        Obligor(id="A", ead=100.0, pd=0.01, lgd=0.5, asset_correlation=0.1),))
+    result = run_book(book, RunOptions(engine="sample", samples=1, copula=False))
+    assert result.diagnostics["expected_loss_standard_error"] is None
+    assert any("cannot be estimated" in note for note in result.notes)

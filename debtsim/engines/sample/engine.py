@@ -606,7 +606,9 @@ class SampleEngine(Engine):
         total = float(w.sum())
         nw = w / total
         el = float(nw @ losses)
-        el_se = float(np.sqrt(np.sum(nw**2 * (losses - el) ** 2)))
+        el_se: float | None = float(np.sqrt(np.sum(nw**2 * (losses - el) ** 2)))
+        if scen.samples < 2 or float(np.ptp(losses)) == 0.0:
+            el_se = None  # every scenario lost the same: the spread, hence the error, is unknown
         dp = np.clip(scen.default_weight / total, 0.0, 1.0)
         # delta method of the ratio estimator; D^2 = D
         sum_sq = float(np.sum(w**2))

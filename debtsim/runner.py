@@ -211,7 +211,7 @@ def run_book(
         measures=measures(dist, options.levels),
         copula_distribution=copula_dist,
         copula_measures=copula_measures,
-        notes=model_notes(dist),
+        notes=model_notes(dist) + unused_option_notes(options, choice.engine.name),
         allocation=allocation,
     )
 
@@ -234,3 +234,16 @@ def model_notes(dist: LossDistribution) -> tuple[str, ...]:
             "sampling error of these figures cannot be estimated; raise the number of samples."
         )
     return tuple(notes)
+
+
+def unused_option_notes(options: RunOptions, engine: str) -> tuple[str, ...]:
+    """Say which options the engine that ran does not use (so none is ignored silently)."""
+    notes = []
+    if options.shots is not None and engine != "circuit":
+        notes.append(f"shots ({options.shots:,}) apply to the circuit engine only; "
+                     f"the {engine} engine ran and did not use them.")
+    if options.samples is not None and engine != "sample":
+        notes.append(f"samples ({options.samples:,}) apply to the sample engine only; "
+                     f"the {engine} engine ran and did not use them.")
+    return tuple(notes)
+

@@ -153,3 +153,13 @@ def test_contributions_can_be_switched_off(tmp_path: Path, harbour_path: Path) -
     cli = CliRunner().invoke(app, ["run", str(harbour_path), "--out", str(out), "-q"])
     assert cli.exit_code == 0, cli.output
     assert (out / "contributions.csv").exists()
+
+
+def test_options_the_engine_does_not_use_are_named(harbour_book: debtsim.Book) -> None:
+    """--shots or --samples given to an engine that does not use them gives a note."""
+    r = debtsim.run(harbour_book, engine="exact", shots=100, samples=5000, copula=False,
+                    contributions=False)
+    assert any("shots (100)" in n and "exact" in n for n in r.notes)
+    assert any("samples (5,000)" in n for n in r.notes)
+    plain = debtsim.run(harbour_book, engine="exact", copula=False, contributions=False)
+    assert not any("apply to" in n for n in plain.notes)

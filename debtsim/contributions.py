@@ -34,8 +34,8 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from numpy.typing import NDArray
 
+from debtsim._typing import FloatArray
 from debtsim.book.records import Book
 from debtsim.irb import irb_capital_amounts
 
@@ -50,7 +50,6 @@ __all__ = [
     "sector_table",
 ]
 
-FloatArray = NDArray[np.float64]
 
 
 @dataclass(frozen=True, eq=False)

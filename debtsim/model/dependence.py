@@ -23,15 +23,13 @@ from dataclasses import dataclass
 from functools import cached_property
 
 import numpy as np
-from numpy.typing import NDArray
 from scipy.special import ndtr, ndtri, stdtrit
 
+from debtsim._typing import FloatArray, IntArray
 from debtsim.book.dependence import DependenceSpec
 
 __all__ = ["FactorStructure", "default_threshold", "sector_conditional_pd"]
 
-FloatArray = NDArray[np.float64]
-IntArray = NDArray[np.int64]
 
 
 def default_threshold(pd: FloatArray, degrees_of_freedom: float | None) -> FloatArray:

@@ -20,13 +20,12 @@ from scipy import sparse
 from scipy.sparse.csgraph import connected_components
 from scipy.special import ndtr, ndtri
 
-from debtsim._typing import FloatArray
+from debtsim._typing import FloatArray, IntArray
 from debtsim.book.records import Book
 from debtsim.model.dependence import FactorStructure
 
 __all__ = ["LinkedFactorModel", "conditional_default_probability"]
 
-IntArray = NDArray[np.int64]
 
 
 def conditional_default_probability(

@@ -18,8 +18,8 @@ from collections.abc import Sequence
 from dataclasses import replace
 
 import numpy as np
-from numpy.typing import NDArray
 
+from debtsim._typing import FloatArray
 from debtsim.contributions import TailMoments
 from debtsim.distribution import LossDistribution
 from debtsim.engines.circuit.builder import factor_grid_for
@@ -30,7 +30,6 @@ from debtsim.model.specification import LinkedFactorModel
 
 __all__ = ["circuit_moments"]
 
-FloatArray = NDArray[np.float64]
 
 
 def _marginals(values: FloatArray, n: int) -> FloatArray:

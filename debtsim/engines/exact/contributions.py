@@ -56,8 +56,8 @@ from typing import Any
 
 import numpy as np
 import scipy.fft as sfft
-from numpy.typing import NDArray
 
+from debtsim._typing import FloatArray, IntArray
 from debtsim.contributions import TailMoments
 from debtsim.distribution import LossDistribution
 from debtsim.engines.exact.engine import (
@@ -91,8 +91,6 @@ __all__ = [
     "law_span",
 ]
 
-FloatArray = NDArray[np.float64]
-IntArray = NDArray[np.int64]
 
 #: Smallest ``theta^r`` kept in the deconvolution series.
 SERIES_TOLERANCE = 1e-18

@@ -51,7 +51,7 @@ import numpy as np
 from numpy.typing import NDArray
 from scipy.special import ndtr, ndtri
 
-from debtsim._typing import FloatArray
+from debtsim._typing import FloatArray, IntArray
 from debtsim.distribution import LossDistribution
 from debtsim.engines.base import Engine, ProgressHook
 from debtsim.engines.exact.loss_grid import (
@@ -70,7 +70,6 @@ from debtsim.model.specification import LinkedFactorModel, conditional_default_p
 
 __all__ = ["ExactEngine"]
 
-IntArray = NDArray[np.int64]
 
 #: Factor range of the default grid; the normal mass outside is ~2e-17.
 FACTOR_LIMIT = 8.5

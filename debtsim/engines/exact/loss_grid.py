@@ -43,7 +43,7 @@ import scipy.fft as sfft
 from numpy.typing import NDArray
 from scipy.signal import fftconvolve
 
-from debtsim._typing import FloatArray
+from debtsim._typing import FloatArray, IntArray
 
 __all__ = [
     "AtomConvolution",
@@ -59,7 +59,6 @@ __all__ = [
     "place_window",
 ]
 
-IntArray = NDArray[np.int64]
 
 #: Bound on the summed truncation error of the log-PGF series, per node.
 SERIES_TOLERANCE = 1e-14

@@ -57,11 +57,11 @@ from typing import Any
 
 import numpy as np
 from numpy.polynomial.legendre import leggauss
-from numpy.typing import NDArray
 from scipy import sparse
 from scipy.special import ndtr
 from scipy.stats import chi2
 
+from debtsim._typing import FloatArray, IntArray
 from debtsim.engines.base import ProgressHook
 from debtsim.engines.exact.loss_grid import (
     SERIES_TOLERANCE,
@@ -85,8 +85,6 @@ __all__ = [
     "sector_refusal",
 ]
 
-FloatArray = NDArray[np.float64]
-IntArray = NDArray[np.int64]
 
 #: Gauss–Hermite nodes per sector factor in the tensor rule (blocks of several sectors).
 DEFAULT_SECTOR_NODES = 16

@@ -24,8 +24,8 @@ from collections.abc import Sequence
 from dataclasses import replace
 
 import numpy as np
-from numpy.typing import NDArray
 
+from debtsim._typing import FloatArray
 from debtsim.contributions import Allocation, TailMoments, allocate
 from debtsim.distribution import LossDistribution
 from debtsim.engines.base import ProgressHook
@@ -36,7 +36,6 @@ from debtsim.risk import value_at_risk, weighted_sample_measures
 
 __all__ = ["sample_contributions"]
 
-FloatArray = NDArray[np.float64]
 
 
 class _Sums:

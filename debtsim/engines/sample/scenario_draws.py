@@ -47,7 +47,7 @@ from numpy.polynomial import Chebyshev
 from numpy.typing import NDArray
 from scipy.special import expit, logit, logsumexp, ndtr, ndtri
 
-from debtsim._typing import FloatArray, SignedArray
+from debtsim._typing import FloatArray, IntArray, SignedArray
 from debtsim.model.specification import LinkedFactorModel
 
 __all__ = [
@@ -62,7 +62,6 @@ __all__ = [
     "thresholds",
 ]
 
-IntArray = NDArray[np.int64]
 
 #: Scenarios per independent random stream (fixed, so results do not depend on chunking).
 BLOCK = 4096

@@ -45,19 +45,17 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from numpy.typing import NDArray
 from scipy.optimize import minimize
 from scipy.special import ndtr
 from scipy.stats import chi2
 
+from debtsim._typing import FloatArray
 from debtsim.engines.sample.scenario_draws import BLOCK, CascadeSampler, ScenarioSet
 from debtsim.model.dependence import FactorStructure, default_threshold
 from debtsim.model.specification import LinkedFactorModel
 
 __all__ = ["SectorProposal", "SectorSampler", "SectorTilt", "factor_matrix", "plan_sector_tilts"]
 
-FloatArray = NDArray[np.float64]
-IntArray = NDArray[np.int64]
 
 #: Factor draws used to find each level's target loss.
 TARGET_DRAWS = 200_000

@@ -167,17 +167,18 @@ def parse_grid(specs: Sequence[str]) -> tuple[GridAxis, ...]:
             continue
         seen.add(name)
         values: list[float] = []
+        texts: list[str] = []
         ok = True
         for i, text in enumerate(rest.split(",")):
             text = text.strip()
             if not text:
-                bad(spec, name, f"value {i + 1} is empty")
+                bad(spec, name, f"the {_ordinal(i + 1)} value is empty")
                 ok = False
                 continue
             try:
                 value = float(text)
             except ValueError:
-                bad(spec, name, f"value {i + 1} is not a number, got {text!r}")
+                bad(spec, name, f"the {_ordinal(i + 1)} value is not a number, got {text!r}")
                 ok = False
                 continue
             message = check_field(name, value)
@@ -185,10 +186,17 @@ def parse_grid(specs: Sequence[str]) -> tuple[GridAxis, ...]:
                 bad(spec, name, message.replace(f"got {value!r}", f"got {text}"))
                 ok = False
             elif value in values:
-                bad(spec, name, f"value {text} is repeated")
+                first = values.index(value)
+                bad(
+                    spec,
+                    name,
+                    f"the {_ordinal(i + 1)} value {text} repeats the "
+                    f"{_ordinal(first + 1)} value {texts[first]}",
+                )
                 ok = False
             else:
                 values.append(value)
+                texts.append(text)
         if ok:
             axes.append(GridAxis(name, tuple(values)))
     if not problems:
@@ -641,3 +649,11 @@ def _table(
     for c in columns:
         frame[c] = frame[c].astype(float)
     return frame
+
+
+def _ordinal(n: int) -> str:
+    """``1st``, ``2nd``, ``3rd``, ``4th``, ... ``11th``, ``12th``, ``13th``, ``21st``."""
+    if 10 <= n % 100 <= 20:
+        return f"{n}th"
+    suffix = {1: "st", 2: "nd", 3: "rd"}.get(n % 10, "th")
+    return f"{n}{suffix}"

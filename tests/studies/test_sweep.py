@@ -114,13 +114,18 @@ def test_parse_grid_and_cartesian_order() -> None:
     [
         (["pd_scale"], "--grid pd_scale: expected NAME=V1,V2,..."),
         (["pd=1,2"], "--grid pd=1,2: pd: unknown parameter; expected one of pd_scale"),
-        (["pd_scale=1,x"], "--grid pd_scale=1,x: pd_scale: value 2 is not a number, got 'x'"),
-        (["pd_scale=1,,2"], "--grid pd_scale=1,,2: pd_scale: value 2 is empty"),
+        (["pd_scale=1,x"], "--grid pd_scale=1,x: pd_scale: the 2nd value is not a number, got 'x'"),
+        (["pd_scale=1,,2"], "--grid pd_scale=1,,2: pd_scale: the 2nd value is empty"),
         (["pd_scale=0,1"], "--grid pd_scale=0,1: pd_scale: must be greater than 0, got 0"),
         (["lgd_shift=2"], "--grid lgd_shift=2: lgd_shift: must be between -1 and 1, got 2"),
         (
             ["contagion_scale=1,1.0"],
-            "--grid contagion_scale=1,1.0: contagion_scale: value 1.0 is repeated",
+            "--grid contagion_scale=1,1.0: contagion_scale: the 2nd value 1.0 repeats the 1st value 1",
+        ),
+        (["pd_scale=,1"], "--grid pd_scale=,1: pd_scale: the 1st value is empty"),
+        (
+            ["pd_scale=0.5,1,2,1e0"],
+            "--grid pd_scale=0.5,1,2,1e0: pd_scale: the 4th value 1e0 repeats the 2nd value 1",
         ),
         (["pd_scale=1", "pd_scale=2"], "--grid pd_scale=2: pd_scale: given twice"),
         (["pd_scale=nan"], "--grid pd_scale=nan: pd_scale: must be a finite number"),

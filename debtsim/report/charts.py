@@ -44,6 +44,7 @@ __all__ = [
     "loss_distribution_figure",
     "new_figure",
     "plain_text",
+    "short_label",
     "png_base64",
     "png_bytes",
     "tail_chart",
@@ -85,6 +86,20 @@ DPI = 110
 def plain_text(text: object) -> str:
     """Keep user text literal in matplotlib (``$`` would start mathtext)."""
     return str(text).replace("$", r"\$")
+
+
+def short_label(text: object, limit: int = 32) -> str:
+    """User text for an axis or legend, literal and at most ``limit`` characters.
+
+    Longer text is shortened in the middle, so both the start and the end of an
+    id stay readable (``LOAN_SERIES_A_…_000123``); ``$`` is kept literal as in
+    :func:`plain_text`.
+    """
+    raw = str(text)
+    if len(raw) > limit:
+        keep = limit - 1
+        raw = raw[: (keep + 1) // 2] + "…" + raw[len(raw) - keep // 2 :]
+    return plain_text(raw)
 
 
 def new_figure(width: float = 9.0, height: float = 4.0) -> tuple[Figure, Axes]:
@@ -418,7 +433,7 @@ def uplift_chart(
     ax.barh(y, own_a, color=PLAIN_COLOUR, height=0.7, label="own PD")
     ax.barh(y, up_a, left=own_a, color=CONTAGION_COLOUR, height=0.7,
             label="added by contagion")
-    ax.set_yticks(y, [plain_text(t) for t in labels], fontsize=8)
+    ax.set_yticks(y, [short_label(t) for t in labels], fontsize=8)
     ax.xaxis.set_major_formatter(PercentFormatter(1.0, decimals=None))
     ax.set_xlabel("PD with contagion")
     ax.set_xlim(left=0)
@@ -467,7 +482,7 @@ def paired_bars_chart(
         ax.barh(y + 0.2, np.asarray(contagion, dtype=float), color=CONTAGION_COLOUR,
                 height=0.38, label="of which contagion")
     ax.barh(y - 0.2, b, color="#4c72b0", height=0.38, label=names[1])
-    ax.set_yticks(y, [plain_text(t) for t in labels], fontsize=8)
+    ax.set_yticks(y, [short_label(t) for t in labels], fontsize=8)
     amount_axis(ax, "x")
     ax.axvline(0.0, color="#555555", linewidth=0.8)
     ax.legend(frameon=False, loc="lower left", bbox_to_anchor=(0.0, 1.0), ncol=3, fontsize=9)

@@ -51,7 +51,9 @@ table { border-collapse:collapse; width:100%; margin:8px 0; font-size:14px; }
 th, td { padding:5px 8px; border-bottom:1px solid var(--line); text-align:left;
          vertical-align:top; }
 th { background:#eef1f5; font-weight:600; }
-td.n, th.n { text-align:right; font-variant-numeric:tabular-nums; white-space:nowrap; }
+td.n, th.n { text-align:right; font-variant-numeric:tabular-nums; }
+td.n { white-space:nowrap; }
+td:not(.n) { overflow-wrap:anywhere; min-width:8.5em; }
 tbody tr:nth-child(even) { background:#fafbfc; }
 tr.base td { font-weight:600; }
 .m { color:var(--model); font-weight:600; }

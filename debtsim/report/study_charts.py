@@ -28,6 +28,7 @@ from debtsim.report.charts import (
     new_figure,
     plain_text,
     png_bytes,
+    short_label,
 )
 from debtsim.report.formatting import level_label, short_amount
 from debtsim.report.text import PD_WITH_CONTAGION
@@ -110,7 +111,7 @@ def measures_by_scenario_chart(
     for j, name in enumerate(names):
         values = table.loc[table["scenario"] == name, measures].to_numpy(dtype=float).ravel()
         ax.bar(x - 0.4 + width * (j + 0.5), values, width * 0.92, color=_series_colour(j),
-               label=plain_text(name))
+               label=short_label(name, 40))
     ax.set_xticks(x, [measure_label(m) for m in measures])
     ax.set_ylabel(plain_text(currency) if currency else "amount")
     amount_axis(ax, "y")
@@ -149,10 +150,12 @@ def loss_distributions_chart(
     for j, (name, law) in enumerate(zip(names, laws, strict=True)):
         x, y = exceedance(law)
         keep = y > 0
-        xs = np.concatenate((x[keep], [float(law.losses[-1])]))
-        ys = np.concatenate((y[keep], [y[keep][-1]]))
+        # P(L > l) is 0 from the largest loss on: the curve drops off the bottom of the
+        # axis there instead of ending in a flat step that reads as a tail going on
+        xs = np.concatenate((x[keep], [float(law.losses[-1])] * 2))
+        ys = np.concatenate((y[keep], [y[keep][-1], floor / 10]))
         ax.step(xs, ys, where="post", color=_series_colour(j), linewidth=2.2 if j == 0 else 1.6,
-                label=plain_text(name))
+                label=short_label(name, 40))
         visible = xs[ys >= floor]
         right = max(right, float(visible[-1]) if visible.size else float(xs[-1]))
     ax.set_yscale("log")
@@ -216,10 +219,10 @@ def movers_figure(table: pd.DataFrame, names: Sequence[str], top: int) -> Figure
     ax.hlines(y, lo, hi, color="#cfd5db", linewidth=2)
     for j, name in enumerate(names[1:]):
         ax.plot(rows[name].to_numpy(dtype=float), y, "o", color=PALETTE[j % len(PALETTE)], ms=5,
-                label=plain_text(name), zorder=3)
+                label=short_label(name, 40), zorder=3)
     ax.plot(rows[names[0]].to_numpy(dtype=float), y, "o", mfc="none", mec=BASE_COLOUR, mew=1.6,
-            ms=9, label=plain_text(names[0]), zorder=4)
-    ax.set_yticks(y, [plain_text(t[:40]) for t in labels], fontsize=8)
+            ms=9, label=short_label(names[0], 40), zorder=4)
+    ax.set_yticks(y, [short_label(t, 40) for t in labels], fontsize=8)
     if log:
         ax.set_xscale("log")
         low = float(positive.min()) / 1.5

@@ -355,3 +355,57 @@ def test_certain_default_does_not_squeeze_the_dot_plot(
     share = (np.log(base.max()) - np.log(base.min())) / (np.log(right) - np.log(left))
     linear_share = (base.max() - base.min()) / 1.0
     assert share > 4 * linear_share
+
+
+LONG_ID = "FWD_HOLDINGS_INTERNATIONAL_SUBSIDIARY_GROUP_REF_0000123456789"
+
+
+def test_long_ids_wrap_inside_table_cells() -> None:
+    """A long id without spaces wraps inside its cell instead of pushing the table sideways.
+
+    Found by looking at a report of a book with 60-character ids in headless Chromium:
+    the link, contribution and book tables ran off the page.
+    """
+    rules = {sel.strip(): body for sel, body in re.findall(r"([^{}]+)\{([^}]*)\}", STYLE)}
+    assert "overflow-wrap:anywhere" in rules["td:not(.n)"]
+    assert "nowrap" in rules["td.n"]  # amounts stay on one line
+    assert "nowrap" not in rules["td.n, th.n"]  # long headers of number columns may wrap
+
+
+def test_long_ids_are_shortened_in_chart_labels(monkeypatch: pytest.MonkeyPatch) -> None:
+    """Bar-chart labels keep the start and end of a long id and stay within 32 characters."""
+    drawn: list[Figure] = []
+    monkeypatch.setattr(charts, "png_base64", lambda fig: drawn.append(fig) or "")
+    charts.paired_bars_chart([LONG_ID, "SHORT"], [2.0, 1.0], [1.0, 1.0], ("a", "b"), "t")
+    labels = [t.get_text() for t in drawn[0].axes[0].get_yticklabels()]
+    assert "SHORT" in labels
+    shortened = next(t for t in labels if t != "SHORT")
+    assert len(shortened) == 32
+    assert shortened.startswith("FWD_HOLDINGS") and shortened.endswith("123456789")
+    assert "…" in shortened
+    assert charts.short_label("$5 loan") == r"\$5 loan"  # still literal for mathtext
+
+
+def test_exceedance_curves_drop_off_at_the_largest_loss(
+    stress_result: debtsim.StressResult, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Each scenario's P(L > l) curve ends by falling below the axis at its largest loss.
+
+    Found in a browser check: curves ended in a flat step at the largest loss, which reads
+    as a tail that goes on.
+    """
+    from debtsim.report import study_charts
+
+    drawn: list[Figure] = []
+    monkeypatch.setattr(study_charts, "png_bytes", lambda fig: drawn.append(fig) or b"")
+    names = list(stress_result.table["scenario"])
+    laws = [run.loss_distribution for run in stress_result.runs]
+    study_charts.loss_distributions_chart(names, laws, (0.99, 0.999), "EUR")
+    ax = drawn[0].axes[0]
+    bottom = ax.get_ylim()[0]
+    assert len(ax.lines) >= len(laws)
+    for line, law in zip(ax.lines, laws, strict=False):
+        x, y = np.asarray(line.get_xdata()), np.asarray(line.get_ydata())
+        assert x[-1] == pytest.approx(float(law.losses[-1]))
+        assert y[-1] < bottom  # off the bottom of the plot
+        assert y[-2] > 0

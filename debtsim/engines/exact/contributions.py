@@ -346,49 +346,106 @@ def exact_moments(
 
 
 # ====================================================================== linked groups
-def _forced_laws(group: _Group, own: FloatArray) -> list[FloatArray]:
-    """Group state laws with each member's own default forced, times its own PD."""
-    out = []
-    for m in range(group.members.size):
-        forced = own.copy()
-        forced[:, m] = 1.0
-        out.append(own[:, m : m + 1] * _group_state_law(group, forced))
-    return out
+#: Largest temporary array (float64 elements) of one batched computation of group states.
+_STATE_ELEMENTS = 1 << 22
 
 
-def _group_terms(
-    acc: _Accumulator,
-    group: _Group,
-    law: FloatArray,
-    forced: list[FloatArray],
-    w: float,
-    rest_below: FloatArray,
-    rest_atom: FloatArray,
-    rest_window: FloatArray | None,
-    rest_mean: float,
-    state_loss: FloatArray,
-) -> None:
-    """Add one node's group terms.
+def _group_states(group: _Group, own: FloatArray) -> tuple[FloatArray, FloatArray]:
+    """Compute a group's state law and its laws with each member's own default forced.
 
-    ``rest_below[l, s]`` is ``P(k_s + L_rest <= v_l)``, ``rest_atom`` the atom,
-    ``state_loss`` the group's loss in each state (the law's units).
+    Parameters
+    ----------
+    group : _Group
+        The group.
+    own : ndarray, shape (nodes, size)
+        Own-default probabilities of its members (``group.members`` order) per node.
+
+    Returns
+    -------
+    law : ndarray, shape (nodes, 2**size)
+        ``P(final = s | z)``, as :func:`_group_state_law`.
+    forced : ndarray, shape (nodes, size, 2**size)
+        ``forced[:, m] = own_m * (the state law with member m's own default forced)``,
+        i.e. ``P(O_m = 1, final = s | z)``.  The ``1 + size`` laws of every node
+        are one batched call of :func:`_group_state_law` (in chunks of nodes).
     """
-    bits = _state_bits(group.members.size).astype(float)
-    members = group.members
-    lw = law * w
-    acc.final[members] += lw @ bits
-    acc.below[:, members] += (rest_below * lw[None, :]) @ bits
-    acc.atom[:, members] += (rest_atom * lw[None, :]) @ bits
-    if rest_window is not None:
-        acc.window[:, members] += (rest_window * lw[None, :]) @ bits
-    acc.cross[members] += (lw * (state_loss + rest_mean)) @ bits
-    for m, fl in enumerate(forced):
-        fw = fl * w
-        i = members[m]
-        acc.own[i] += fw.sum()
-        acc.below_own[:, i] += rest_below @ fw
-        acc.atom_own[:, i] += rest_atom @ fw
-        acc.cross_own[i] += fw @ (state_loss + rest_mean)
+    nodes, size = own.shape
+    full = 1 << size
+    law = np.empty((nodes, full))
+    forced = np.empty((nodes, size, full))
+    step = max(1, _STATE_ELEMENTS // ((size + 1) * full))
+    diag = np.arange(size)
+    for a in range(0, nodes, step):
+        o = own[a : a + step]
+        stacked = np.repeat(o[:, None, :], size + 1, axis=1)
+        stacked[:, diag + 1, diag] = 1.0
+        both = _group_state_law(group, stacked.reshape(-1, size)).reshape(o.shape[0], size + 1,
+                                                                           full)
+        law[a : a + step] = both[:, 0]
+        forced[a : a + step] = o[:, :, None] * both[:, 1:]
+    return law, forced
+
+
+class _GroupTerms:
+    """One linked group's terms at many nodes, added to the sums in batches.
+
+    Per node the caller gives the weight, the members' own PDs, and the rest of
+    the book's CDF (``3 * levels`` rows: below VaR, at VaR, on the three-point
+    window) at each distinct group loss; :meth:`flush` computes the group's
+    state laws for all kept nodes at once and adds ``E[D_i f(L)]``,
+    ``E[O_i f(L)]`` and the cross moments of every member.
+    """
+
+    def __init__(self, acc: _Accumulator, group: _Group, positions: FloatArray,
+                 state_loss: FloatArray, levels: int, windowed: bool) -> None:
+        self.acc = acc
+        self.group = group
+        self.state_of = np.searchsorted(positions, state_loss)
+        self.state_loss = state_loss
+        self.levels = levels
+        self.windowed = windowed
+        size = group.members.size
+        self.bits = _state_bits(size).astype(float)
+        self.limit = max(1, _STATE_ELEMENTS // ((size + 1) * (1 << size)
+                                                + 3 * levels * positions.size))
+        self.w: list[float] = []
+        self.own: list[FloatArray] = []
+        self.rest: list[FloatArray] = []
+        self.rest_mean: list[float] = []
+
+    def add(self, w: float, own: FloatArray, rest: FloatArray, rest_mean: float) -> None:
+        """Keep one node: weight, members' own PDs, rest CDF rows by distinct loss, rest mean."""
+        self.w.append(w)
+        self.own.append(own)
+        self.rest.append(rest)
+        self.rest_mean.append(rest_mean)
+        if len(self.w) >= self.limit:
+            self.flush()
+
+    def flush(self) -> None:
+        """Add the kept nodes' terms to the accumulator."""
+        if not self.w:
+            return
+        acc, members, lev, bits = self.acc, self.group.members, self.levels, self.bits
+        w = np.asarray(self.w)
+        law, forced = _group_states(self.group, np.stack(self.own))
+        rest = np.stack(self.rest)[:, :, self.state_of]  # (nodes, rows, states)
+        total = self.state_loss[None, :] + np.asarray(self.rest_mean)[:, None]
+        self.w, self.own, self.rest, self.rest_mean = [], [], [], []
+        lw = law * w[:, None]
+        fw = forced * w[:, None, None]
+        acc.final[members] += lw.sum(axis=0) @ bits
+        terms = np.einsum("jks,js->ks", rest, lw) @ bits  # (rows, members)
+        acc.below[:, members] += terms[:lev]
+        acc.atom[:, members] += terms[lev : 2 * lev]
+        if self.windowed:
+            acc.window[:, members] += terms[2 * lev :]
+        acc.cross[members] += np.einsum("js,js->s", lw, total) @ bits
+        acc.own[members] += fw.sum(axis=(0, 2))
+        own_terms = np.einsum("jks,jms->km", rest, fw)
+        acc.below_own[:, members] += own_terms[:lev]
+        acc.atom_own[:, members] += own_terms[lev : 2 * lev]
+        acc.cross_own[members] += np.einsum("jms,js->m", fw, total)
 
 
 # ====================================================================== atoms mode
@@ -425,6 +482,10 @@ def _atoms_pass(
 
         return lookup
 
+    state_losses = [_state_bits(g.members.size).astype(float) @ loss[g.members] for g in groups]
+    distinct = [np.unique(sl) for sl in state_losses]
+    terms = [_GroupTerms(acc, g, d, sl, var.size, windowed=False)
+             for g, d, sl in zip(groups, distinct, state_losses, strict=True)]
     for start in range(0, len(grid), step):
         z = grid.nodes[start : start + step]
         ws = grid.weights[start : start + step]
@@ -462,16 +523,14 @@ def _atoms_pass(
             acc.cross[lossy_single] += w * cross
             acc.cross_own[lossy_single] += w * cross
             for gi, g in enumerate(groups):
-                state_loss = _state_bits(g.members.size).astype(float) @ loss[g.members]
-                glaw = glaws[gi][j]
                 rest_lookup = lookup_of(rest_probs[gi][j])
-                rb = np.empty((var.size, state_loss.size))
-                ra = np.empty((var.size, state_loss.size))
+                rows = np.zeros((3 * var.size, distinct[gi].size))
                 for li, v in enumerate(var):
-                    rb[li], ra[li] = rest_lookup(v - state_loss)
-                forced = [f[0] for f in _forced_laws(g, own[j : j + 1, g.members])]
-                rest_mean = float(means[j] - glaw @ state_loss)
-                _group_terms(acc, g, glaw, forced, w, rb, ra, None, rest_mean, state_loss)
+                    rows[li], rows[var.size + li] = rest_lookup(v - distinct[gi])
+                rest_mean = float(means[j] - glaws[gi][j] @ state_losses[gi])
+                terms[gi].add(w, own[j, g.members], rows, rest_mean)
+    for t in terms:
+        t.flush()
 
 
 # ====================================================================== grid mode
@@ -503,11 +562,15 @@ def _grid_pass(
     cls_k2c = cls_k.astype(float) ** 2 * cls_count
     scratch = np.zeros(model.n_obligors)
     glaws = _all_group_laws(groups, model, pr_unique, pr_of, k_all, grid, scratch)
-    group_bits = [_state_bits(g.members.size) for g in groups]
-    group_pos = [b.astype(np.int64) @ k_all[g.members] for b, g in zip(group_bits, groups,
-                                                                        strict=True)]
-    nodes, weights = grid.nodes, grid.weights
     lev = points.size
+    terms = []
+    for g, pos_u in zip(groups, glaws.positions, strict=True):
+        state_pos = _state_bits(g.members.size).astype(np.int64) @ k_all[g.members]
+        terms.append(_GroupTerms(acc, g, pos_u.astype(float), state_pos.astype(float), lev,
+                                 windowed=True))
+    group_mean = [merged @ pos_u.astype(float) for pos_u, merged in zip(
+        glaws.positions, glaws.merged, strict=True)]
+    nodes, weights = grid.nodes, grid.weights
     wide_points = np.concatenate([points - 2, points + 1])  # window v-1..v+1 from two CDFs
     n_cls = cls_k.size
     c_final = np.zeros(n_cls)
@@ -586,71 +649,43 @@ def _grid_pass(
             if not groups:
                 continue
             assert own_all is not None
-            all_rel = np.concatenate([rel, (wide_points - window.start).astype(float)])
+            wide_rel = (wide_points - window.start).astype(float)
+            all_rel = np.concatenate([rel, wide_rel])
             f_all, a_all = lookup(all_rel)
             upper = 1.0 - f_all + a_all
             if not np.any((upper > NEGLIGIBLE) & (f_all > NEGLIGIBLE)):
                 # VaR far from this node's law: 1{L <= v} is 1 (or 0) for every state
                 side = (upper <= NEGLIGIBLE).astype(float)
+                col = np.concatenate([side[:lev], np.zeros(lev),
+                                      side[2 * lev :] - side[lev : 2 * lev]])
                 for gi, g in enumerate(groups):
-                    own_g = own_all[j : j + 1, g.members]
-                    glaw = _group_state_law(g, own_g)[0]
-                    forced = [f[0] for f in _forced_laws(g, own_g)]
-                    n_s = glaw.size
-                    rb = np.repeat(side[:lev, None], n_s, axis=1)
-                    rw = np.repeat((side[2 * lev :] - side[lev : 2 * lev])[:, None], n_s, axis=1)
-                    pos = group_pos[gi]
-                    rest_mean = mean - float(glaw @ pos)
-                    _group_terms(acc, g, glaw, forced, w, rb, np.zeros_like(rb), rw, rest_mean,
-                                 pos.astype(float))
+                    rows = np.repeat(col[:, None], glaws.positions[gi].size, axis=1)
+                    terms[gi].add(w, own_all[j, g.members], rows, mean - group_mean[gi][at])
                 continue
-            wide_rel = (wide_points - window.start).astype(float)
-            fft_rest: list[FloatArray] | None = None
-            for gi, g in enumerate(groups):
-                pos = group_pos[gi]
-                pos_u = glaws.positions[gi]
-                series = _rest_by_series(glaws.merged[gi][at], pos_u, lookup,
-                                         np.concatenate([rel, wide_rel]), span, width)
+            laws_at = [(pos_u, merged[at]) for pos_u, merged in zip(
+                glaws.positions, glaws.merged, strict=True)]
+            # the series only where every group converges fast; else spectra for all groups
+            # (their cost is shared, the series' is not)
+            series_first = all(pos_u[0] == 0 and prob[0] > _SERIES_MIN_BASE
+                               for pos_u, prob in laws_at)
+            rows_of: dict[int, FloatArray] = {}
+            for gi, (pos_u, prob) in enumerate(laws_at):
+                series = _rest_by_series(prob, pos_u, lookup, all_rel, span, width) \
+                    if series_first else None
                 if series is not None:
                     f_u, a_u = series
-                    state_u = np.searchsorted(pos_u, pos)
-                    rb = f_u[:lev, state_u]
-                    ra = a_u[:lev, state_u]
-                    rw = f_u[2 * lev :, state_u] - f_u[lev : 2 * lev, state_u]
-                else:
-                    if fft_rest is None:
-                        fft_rest = _rest_laws_by_fft(
-                            grid_law(cls_k, p, window, count=cls_count.astype(float))[0],
-                            [(pu, merged[at]) for pu, merged in zip(
-                                glaws.positions, glaws.merged, strict=True)],
-                            width,
-                        )
-                    rest = fft_rest[gi]
-                    c2 = np.concatenate(([0.0], np.cumsum(np.concatenate((rest, rest)))))
-                    b = np.mod(-pos, width)
-
-                    def rest_cdf(v_rel: float, b: IntArray = b, c2: FloatArray = c2,
-                                 width: int = width) -> FloatArray:
-                        if v_rel < 0:
-                            return np.zeros(b.size)
-                        if v_rel >= width:
-                            return np.ones(b.size) * c2[width]
-                        vi = int(v_rel)
-                        return c2[b + vi + 1] - c2[b]
-
-                    rb = np.stack([rest_cdf(float(v)) for v in rel])
-                    ra = np.stack([
-                        rest[np.mod(int(v) - pos, width)] if 0 <= v < width
-                        else np.zeros(pos.size)
-                        for v in rel
-                    ])
-                    wb = np.stack([rest_cdf(float(v)) for v in wide_rel])
-                    rw = wb[lev:] - wb[:lev]
-                own_g = own_all[j : j + 1, g.members]
-                glaw = _group_state_law(g, own_g)[0]
-                forced = [f[0] for f in _forced_laws(g, own_g)]
-                rest_mean = mean - float(glaw @ pos)
-                _group_terms(acc, g, glaw, forced, w, rb, ra, rw, rest_mean, pos.astype(float))
+                    rows_of[gi] = np.concatenate([f_u[:lev], a_u[:lev],
+                                                  f_u[2 * lev :] - f_u[lev : 2 * lev]])
+            wanted = [gi for gi in range(len(groups)) if gi not in rows_of]
+            if wanted:
+                rows_of.update(_rest_rows_by_fft(
+                    grid_law(cls_k, p, window, count=cls_count.astype(float))[0],
+                    laws_at, wanted, rel, wide_rel, width,
+                ))
+            for gi, g in enumerate(groups):
+                terms[gi].add(w, own_all[j, g.members], rows_of[gi], mean - group_mean[gi][at])
+    for t in terms:
+        t.flush()
     o, co = lossy_single, cls_of
     for vector in (acc.final, acc.own):
         vector[o] += c_final[co]
@@ -735,20 +770,125 @@ def _rest_by_series(
     return cdf, atom
 
 
-def _rest_laws_by_fft(
-    singles: FloatArray, groups: Sequence[tuple[IntArray, FloatArray]], width: int
-) -> list[FloatArray]:
-    """Law of the book without each group, on the node's window (cyclic, by spectra)."""
-    spectra = [
-        sfft.rfft(np.bincount(np.mod(pos, width), weights=prob, minlength=width))
-        for pos, prob in groups
-    ]
-    base = sfft.rfft(singles)
-    n_g = len(groups)
-    prefix = [base]
-    for spec in spectra[:-1]:
-        prefix.append(prefix[-1] * spec)
-    suffix = [np.ones_like(base)] * n_g
-    for gi in range(n_g - 2, -1, -1):
-        suffix[gi] = suffix[gi + 1] * spectra[gi + 1]
-    return [sfft.irfft(prefix[gi] * suffix[gi], width) for gi in range(n_g)]
+def _rest_rows(rest: FloatArray, positions: IntArray, rel: FloatArray, wide_rel: FloatArray,
+               width: int) -> FloatArray:
+    """Rest-of-book rows (below, at, window; see :class:`_GroupTerms`) from its cyclic law."""
+    c2 = np.concatenate(([0.0], np.cumsum(np.concatenate((rest, rest)))))
+    b = np.mod(-positions, width)
+
+    def cdf(v_rel: float) -> FloatArray:
+        if v_rel < 0:
+            return np.zeros(b.size)
+        if v_rel >= width:
+            return np.ones(b.size) * c2[width]
+        vi = int(v_rel)
+        return np.asarray(c2[b + vi + 1] - c2[b], dtype=np.float64)
+
+    lev = rel.size
+    below = np.stack([cdf(float(v)) for v in rel])
+    atom = np.stack([
+        rest[np.mod(int(v) - positions, width)] if 0 <= v < width else np.zeros(positions.size)
+        for v in rel
+    ])
+    wide = np.stack([cdf(float(v)) for v in wide_rel])
+    return np.concatenate([below, atom, wide[lev:] - wide[:lev]])
+
+
+def _blocks(reach: Sequence[int], cap: int) -> list[list[int]]:
+    """Consecutive groups whose loss ranges add up to at most ``cap`` (a wider group alone)."""
+    blocks: list[list[int]] = [[]]
+    span = 0
+    for gi, r in enumerate(reach):
+        if blocks[-1] and span + r > cap:
+            blocks.append([])
+            span = 0
+        blocks[-1].append(gi)
+        span += r
+    return blocks
+
+
+def _rest_rows_by_fft(
+    singles: FloatArray,
+    groups: Sequence[tuple[IntArray, FloatArray]],
+    wanted: Sequence[int],
+    rel: FloatArray,
+    wide_rel: FloatArray,
+    width: int,
+) -> dict[int, FloatArray]:
+    """Rest-of-book rows (see :class:`_GroupTerms`) of the ``wanted`` groups, by spectra.
+
+    On the node's window (cyclic, ``N = width`` points) the law of the book
+    without group ``g`` is ``S * prod_{h != g} G_h`` (``S`` the single
+    obligors' law, ``G_h`` the group laws, ``*`` cyclic convolution).  The
+    groups are gathered into blocks ``B`` of consecutive groups whose loss
+    ranges add up to a few thousand grid units (see below); with ``P_B`` the
+    product of a block's laws and ``P_{B,-g}`` the same without ``g``::
+
+        rest_g = L_B * P_{B,-g},   L_B = S * prod_{B' != B} P_{B'},
+
+    so one long inverse transform per block (not per group) gives ``L_B``.  A
+    row of ``g`` at group loss ``u`` is ``E[f(u + rest_g)] = sum_d P_{B,-g}(d)
+    F(u + d)`` with ``F(t) = E[f(t + L_B)]`` (cyclic CDF from ``-t`` to
+    ``x - t``, or the atom at ``x - t``): a correlation over ``t <= D_B``, the
+    block's loss range, done by short transforms of length ``>= D_B + 1`` (no
+    wrap-around).  Block size balances the long transforms (two per block)
+    against the short ones (about ``3 levels + 1`` per wanted group):
+    ``D_B ~ sqrt(2 D N / (wanted (3 levels + 1)))`` with ``D`` the summed
+    ranges.  Up to rounding this is the same cyclic law as the product of all
+    other spectra.
+    """
+    lev = rel.size
+    reach = [int(pos[-1]) for pos, _ in groups]
+    rows_n = 3 * lev
+    cap = int(np.sqrt(2.0 * sum(reach) * width / (len(wanted) * (rows_n + 1))))
+    blocks = _blocks(reach, max(cap, max(reach), 1))
+    want = set(wanted)
+    # short spectra of each block: its product and the leave-one-out products of wanted groups
+    block_laws = []
+    leave_one_out: list[tuple[int, FloatArray]] = []  # (length, spectra) per block
+    for blk in blocks:
+        d_b = sum(reach[gi] for gi in blk)
+        m = sfft.next_fast_len(d_b + 1, real=True)
+        dense = np.zeros((len(blk), m))
+        for r, gi in enumerate(blk):
+            pos, prob = groups[gi]
+            dense[r, pos] = prob
+        spec = sfft.rfft(dense, axis=1)
+        ones = np.ones((1, spec.shape[1]), dtype=spec.dtype)
+        prefix = np.cumprod(np.concatenate([ones, spec[:-1]]), axis=0)
+        suffix = np.cumprod(np.concatenate([ones, spec[:0:-1]]), axis=0)[::-1]
+        block_laws.append(sfft.irfft(prefix[-1] * spec[-1], m)[: d_b + 1])
+        leave_one_out.append((m, prefix * suffix))
+    # long spectra: singles and each block, then each block's complement
+    placed = np.zeros((len(blocks), width))
+    for b, law in enumerate(block_laws):
+        if law.size <= width:
+            placed[b, : law.size] = law
+        else:
+            placed[b] = np.bincount(np.mod(np.arange(law.size), width), weights=law,
+                                    minlength=width)
+    long = sfft.rfft(placed, axis=1)
+    outside = np.empty_like(long)
+    acc = sfft.rfft(singles)
+    for b in range(len(blocks)):
+        outside[b] = acc
+        acc = acc * long[b]
+    acc = np.ones_like(acc)
+    for b in range(len(blocks) - 1, -1, -1):
+        outside[b] *= acc
+        acc = acc * long[b]
+    needed = [b for b, blk in enumerate(blocks) if want.intersection(blk)]
+    rests = sfft.irfft(outside[needed], width, axis=1)
+    out: dict[int, FloatArray] = {}
+    for rest, b in zip(rests, needed, strict=True):
+        blk = blocks[b]
+        m, loo = leave_one_out[b]
+        t = np.arange(block_laws[b].size)
+        f = np.zeros((rows_n, m))
+        f[:, : t.size] = _rest_rows(rest, t, rel, wide_rel, width)
+        f_spec = sfft.rfft(f, axis=1)
+        mine = [r for r, gi in enumerate(blk) if gi in want]
+        corr = sfft.irfft(f_spec[None, :, :] * np.conj(loo[mine])[:, None, :], m, axis=2)
+        for c, r in zip(corr, mine, strict=True):
+            out[blk[r]] = c[:, groups[blk[r]][0]]
+    return out

@@ -193,3 +193,73 @@ def test_group_removal_by_series_and_by_fft_agree_with_brute_force(
         np.testing.assert_allclose(alloc.expected_shortfall[j], ref[("es", a)], rtol=0, atol=tol)
         np.testing.assert_allclose(alloc.var_contagion[j],
                                    ref[("var", a)] - ref[("own_var", a)], rtol=0, atol=tol)
+
+
+@pytest.mark.parametrize("wanted", [[0, 1, 2, 3, 4, 5, 6, 7], [2, 5], [7]])
+def test_blocked_rest_rows_equal_the_plain_cyclic_convolution(wanted: list[int]) -> None:
+    """Rest-of-book rows by blocks of groups equal those of the law without each group.
+
+    Reference: the law without group g convolved directly (np.convolve, then wrapped onto
+    the cyclic window) and its CDF and atoms summed by hand at every point and group loss.
+    """
+    import debtsim.engines.exact.contributions as ec
+
+    rng = np.random.default_rng(3)
+    width = 200
+    singles = rng.random(width) * (np.arange(width) < 150)
+    singles /= singles.sum()
+    groups = []
+    for _ in range(8):
+        pos = np.unique(np.concatenate([[0], rng.integers(1, 31, size=5)]))
+        prob = rng.random(pos.size)
+        groups.append((pos.astype(np.int64), prob / prob.sum()))
+    rel = np.array([60.0, 120.0])
+    wide_rel = np.concatenate([rel - 2, rel + 1])
+    reach = [int(p[-1]) for p, _ in groups]
+    cap = int(np.sqrt(2.0 * sum(reach) * width / (len(wanted) * 7)))
+    blocks = ec._blocks(reach, max(cap, max(reach)))
+    assert len(blocks) > 1 or len(wanted) == 8
+    got = ec._rest_rows_by_fft(singles, groups, wanted, rel, wide_rel, width)
+    assert sorted(got) == sorted(wanted)
+    for gi in wanted:
+        law = singles.copy()
+        for h, (pos, prob) in enumerate(groups):
+            if h != gi:
+                dense = np.zeros(pos[-1] + 1)
+                dense[pos] = prob
+                law = np.convolve(law, dense)
+        rest = np.bincount(np.arange(law.size) % width, weights=law, minlength=width)
+
+        def cdf(x: float, u: int, rest: np.ndarray = rest) -> float:
+            return float(sum(rest[(i - u) % width] for i in range(int(x) + 1)))
+
+        pos = groups[gi][0]
+        want = np.array(
+            [[cdf(x, u) for u in pos] for x in rel]
+            + [[rest[(int(x) - u) % width] for u in pos] for x in rel]
+            + [[cdf(x + 1, u) - cdf(x - 2, u) for u in pos] for x in rel]
+        )
+        np.testing.assert_allclose(got[gi], want, rtol=0, atol=1e-14)
+
+
+def test_forced_group_states_equal_one_call_per_member() -> None:
+    """The batched forced laws equal the group law with one member's own PD set to 1.
+
+    Reference: _group_state_law called once per member with that member's own default
+    forced, times its own PD (the definition of P(O_m = 1, final = s)).
+    """
+    from debtsim.engines.exact.contributions import _group_states
+    from debtsim.engines.exact.engine import _group_state_law, _linked_groups
+
+    model = LinkedFactorModel.from_book(CYCLE_BOOKS["figure eight"])
+    own = model.conditional_pd(gauss_hermite(8).nodes)
+    for g in _linked_groups(model):
+        law, forced = _group_states(g, own[:, g.members])
+        np.testing.assert_allclose(law, _group_state_law(g, own[:, g.members]), rtol=0,
+                                   atol=1e-15)
+        for m in range(g.members.size):
+            pinned = own[:, g.members].copy()
+            pinned[:, m] = 1.0
+            np.testing.assert_allclose(
+                forced[:, m], own[:, g.members[m], None] * _group_state_law(g, pinned),
+                rtol=0, atol=1e-15)

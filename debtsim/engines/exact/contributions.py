@@ -25,14 +25,18 @@ the support.  Obligors with equal conditional PD and grid loss (the
 engine's classes) are computed once.
 
 *Link groups* (a general factor ``Q_g(x) = sum_s P(s | z) x^(k_s)``): the law
-of the rest of the book is the product of the other factors, formed from
-prefix and suffix products of the group spectra on the node's window (grid
-mode) or by convolving the other items (exact-atoms mode); then
-``E[D_i f(L)] = sum_s P(s) D_i(s) E[f(k_s + L_rest)]``.
+of the rest of the book is the product of the other factors: on the grid by
+the inverse-PGF series where the group's no-loss state dominates, else by
+spectra on the node's window, groups gathered in blocks so that one long
+inverse transform serves a block (see :func:`_rest_rows_by_fft`); in
+exact-atoms mode by convolving the other items.  Then
+``E[D_i f(L)] = sum_s P(s) D_i(s) E[f(k_s + L_rest)]``, summed for all nodes
+of a group at once (:class:`_GroupTerms`).
 
 *Own default versus contagion.*  The own-default part ``E[O_i f(L)]`` is
 ``p_i`` times the same sum over the group law with ``i``'s own default
-forced (seed probability 1); outside linked groups the two coincide.
+forced (seed probability 1); outside linked groups the two coincide.  The
+group's law and its ``size`` forced laws are one batched call per group.
 
 *VaR on a continuous stretch.*  On the loss grid the law is discrete, so VaR
 is an atom of width one grid unit; ``E[L_i | L = v]`` on that atom is a

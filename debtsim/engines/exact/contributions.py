@@ -587,13 +587,7 @@ def _grid_pass(
         ws = weights[start : start + batch]
         p_pr = conditional_default_probability(pr_unique[:, 0], pr_unique[:, 1], z)
         own_all = model.conditional_pd(z) if groups else None
-        if groups:  # the engine's product of the group laws, per node
-            dense = []
-            for pos_u, merged in zip(glaws.positions, glaws.merged, strict=True):
-                block = np.zeros((z.size, int(pos_u[-1] - pos_u[0]) + 1))
-                block[:, pos_u - pos_u[0]] = merged[start : start + batch]
-                dense.append((int(pos_u[0]), block))
-            group_offset, group_law_batch = product_law(dense)
+        product: tuple[int, FloatArray] | None = None  # the groups' product, when needed
         for j in range(z.size):
             w = float(ws[j])
             at = start + j
@@ -617,7 +611,16 @@ def _grid_pass(
             if kept is not None and kept[0] == window.start and kept[1].size == width:
                 law = kept[1]
             else:
-                extra = (group_offset, group_law_batch[j]) if groups else None
+                extra = None
+                if groups:  # the engine's product of the group laws (only for unkept laws)
+                    if product is None:
+                        dense = []
+                        for pos_u, merged in zip(glaws.positions, glaws.merged, strict=True):
+                            block = np.zeros((z.size, int(pos_u[-1] - pos_u[0]) + 1))
+                            block[:, pos_u - pos_u[0]] = merged[start : start + batch]
+                            dense.append((int(pos_u[0]), block))
+                        product = product_law(dense)
+                    extra = (product[0], product[1][j])
                 law, _ = grid_law(cls_k, p, window, count=cls_count.astype(float), extra=extra)
                 law[: max(lowest - window.start, 0)] = 0.0
                 law[max(highest + 1 - window.start, 0) :] = 0.0

@@ -295,3 +295,38 @@ def test_sector_draws_are_reproducible_and_match_their_pds(dof):
     pd = np.asarray(model.pd, dtype=float)
     assert np.all(np.abs(freq - pd) < 5.0 * np.sqrt(pd * (1 - pd) / samples)), freq - pd
     assert math.isfinite(float(scen.losses.sum()))
+
+
+def test_work_grows_with_the_defaults_not_obligors_times_scenarios():
+    """A block of 4,096 scenarios x 2,000 low-PD obligors draws at most 2^18 uniforms, not 8 M.
+
+    The README's claim for the ``sample`` engine: no draw per obligor and scenario.
+    """
+    from debtsim.engines.sample.own_draws import REFILL
+
+    n = 2000
+    pd = np.full(n, 1e-4)
+    r = np.full(n, 0.1)
+    alpha = -np.sqrt(r / (1 - r))
+    gamma = ndtr_inv(pd) / np.sqrt(1 - r)
+    draws = OwnDefaultDraws(alpha, gamma, np.zeros(n), np.zeros(0, dtype=np.int64))
+    z = np.random.default_rng(1).standard_normal(BLOCK)
+    members = np.arange(n, dtype=np.int64)
+    order = np.argsort(z)
+    level = draws.levels(z[order], np.ones(BLOCK), np.zeros(BLOCK), members)
+
+    class Counting:
+        def __init__(self) -> None:
+            self.used = 0
+            self.rng = np.random.default_rng(2)
+
+        def random(self, size: int) -> np.ndarray:
+            self.used += size
+            return self.rng.random(size)
+
+    rng = Counting()
+    run = SortedRun(key=z[order], scale=np.ones(BLOCK), theta=np.zeros(BLOCK),
+                    scen=order.astype(np.int64), members=members, level=level)
+    r_, _ = draws.draw(rng, [run], BLOCK)  # type: ignore[arg-type]
+    assert rng.used <= 2 * REFILL < n * BLOCK // 20
+    assert r_.size < 5 * n * BLOCK * 1e-4

@@ -315,8 +315,9 @@ class CascadeSampler:
     proposal : Proposal or None
         None samples the model itself (plain Monte Carlo).
     chunk : int or None
-        Scenarios whose cascade runs at once (at most :data:`BLOCK`); None
-        picks about 2^19 scenario-obligor pairs.  Does not change the result.
+        Scenarios per :class:`ChunkDefaults` handed to ``observe`` (at most
+        :data:`BLOCK`); None picks about 2^19 scenario-obligor pairs.  Does
+        not change the result.
     workers : int
         Threads working on blocks in parallel.  Does not change the result.
     observe : callable, optional

@@ -18,8 +18,9 @@ Own defaults (exact thinning of a Bernoulli sequence)
     bound at the corner of the piece's ranges of ``k``, ``c`` and ``theta``
     (``F`` increases in both arguments).  Candidates are the successes of
     Bernoulli(``p_env``) trials on the piece, found by geometric skips
-    drawn by inversion, ``floor(log U / log(1 - p_env))`` (Devroye 1986,
-    *Non-Uniform Random Variate Generation*, ch. X.2); a candidate is kept
+    drawn by inversion, ``floor(log U / log(1 - p_env))`` (the inversion
+    method for the geometric law, Devroye 1986, *Non-Uniform Random Variate
+    Generation*); a candidate is kept
     with probability ``p_s / p_env`` (thinning, Lewis & Shedler 1979,
     "Simulation of nonhomogeneous Poisson processes by thinning", in its
     Bernoulli form).  Each pair ``(s, i)`` is then a default with
@@ -27,7 +28,10 @@ Own defaults (exact thinning of a Bernoulli sequence)
     pair: exactly the model's law, at a cost proportional to the number of
     candidates plus the number of pieces.  A lower bound ``p_low`` on the
     piece (the opposite corner) accepts most candidates without computing
-    ``p_s`` ("squeeze", Marsaglia 1977).
+    ``p_s`` (the "squeeze" of Marsaglia 1977, "The squeeze method for
+    generating gamma variates").  Where the envelope is large
+    (:data:`_DENSE`), every scenario of the piece is a candidate (one uniform
+    each, no skip): the same law with fewer operations.
 Cascade
     Per scenario, depth first from the own defaults along the links whose
     creditor has not defaulted yet; a link is live when the uniform of
@@ -72,6 +76,8 @@ _S11 = np.uint64(11)
 _ONE = np.uint64(1)
 #: The envelope is raised by this relative margin so rounding never puts it below ``p_s``.
 _ENVELOPE_MARGIN = 1e-12
+#: Pieces whose envelope reaches this draw one uniform per scenario instead of skips.
+_DENSE = 0.25
 
 
 @numba.njit(cache=True, nogil=True)
@@ -213,6 +219,25 @@ def _thin(
             if p_env <= 0.0:
                 continue
             p_env = min(1.0, p_env * (1.0 + _ENVELOPE_MARGIN))
+            arg = al * (kl if al >= 0.0 else kh) + ga * (cl if ga >= 0.0 else ch)
+            if p_env >= _DENSE:
+                # likely defaults: one uniform per scenario beats skips (same law)
+                p_low = _twisted(_phi(arg), t_lo[off + j] * sl)
+                for pos in range(lo, hi):
+                    w = u[ptr]
+                    ptr += 1
+                    if w >= p_env:
+                        continue
+                    if w < p_low:
+                        keep = True
+                    else:
+                        p = _twisted(_phi(al * key[pos] + ga * scale[pos]), theta[pos] * sl)
+                        keep = w < p
+                    if keep:
+                        out_r[n_out] = scen[pos]
+                        out_c[n_out] = i
+                        n_out += 1
+                continue
             log_q = math.log1p(-p_env)
             p_low = -1.0
             pos = lo - 1
@@ -232,7 +257,6 @@ def _thin(
                 ptr += 1
                 if p_low < 0.0:
                     # lowest p on the piece: the opposite corner and the smallest twist
-                    arg = al * (kl if al >= 0.0 else kh) + ga * (cl if ga >= 0.0 else ch)
                     p_low = _twisted(_phi(arg), t_lo[off + j] * sl)
                 if w < p_low:
                     keep = True

@@ -78,6 +78,9 @@ class OwnDefaultDraws:
         self.gamma = np.ascontiguousarray(gamma, dtype=np.float64)
         self.sloss = np.ascontiguousarray(sloss, dtype=np.float64)
         self.always = np.asarray(always, dtype=np.int64)
+        # output size of the last block: a first guess for the next (speed only; shared
+        # by threads without a lock, as any value gives the same draws)
+        self._hint = 0
 
     def levels(
         self, key: FloatArray, scale: FloatArray, theta: FloatArray, members: IntArray
@@ -105,7 +108,7 @@ class OwnDefaultDraws:
         """
         from debtsim.engines.sample.kernels import range_tables, thin_defaults
 
-        cap = max(4096, 4 * rows)
+        cap = max(4096, 4 * rows, self._hint + self._hint // 4)
         out_r = np.empty(cap, dtype=np.int64)
         out_c = np.empty(cap, dtype=np.int64)
         n_out = 0
@@ -134,6 +137,7 @@ class OwnDefaultDraws:
                     cap *= 2
                     out_r = np.concatenate([out_r[:n_out], np.empty(cap - n_out, np.int64)])
                     out_c = np.concatenate([out_c[:n_out], np.empty(cap - n_out, np.int64)])
+        self._hint = n_out
         own_r, own_c = out_r[:n_out], out_c[:n_out]
         if self.always.size:
             own_r = np.concatenate([own_r, np.repeat(np.arange(rows, dtype=np.int64),

@@ -17,10 +17,11 @@ import pytest
 from scipy.special import expit, logit, ndtr
 from scipy.stats import binomtest
 
+from debtsim.engines.sample.cascade_kernels import cascade
 from debtsim.engines.sample.engine import SampleEngine
-from debtsim.engines.sample.kernels import LEVEL_MAX, LEVEL_MIN, cascade
 from debtsim.engines.sample.own_draws import OwnDefaultDraws, SortedRun
 from debtsim.engines.sample.scenario_draws import BLOCK, CascadeSampler, ChunkDefaults
+from debtsim.engines.sample.thinning_kernels import LEVEL_MAX, LEVEL_MIN
 from debtsim.model.factor_grid import gauss_hermite
 from tests.engines.test_sample import TINY_BOOKS, make_model
 from tests.reference import enumerate_states

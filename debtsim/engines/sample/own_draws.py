@@ -7,7 +7,7 @@ expit(logit Phi(x) + t)``: in the one-factor model ``k = z``, ``c = 1``,
 ``theta`` is the exponential twist of importance sampling (0 without).
 The scenarios of a block are cut into *runs* (one per mixture component,
 or one per sector), each sorted by its key; the compiled kernel
-(:func:`debtsim.engines.sample.kernels.thin_defaults`) then draws the
+(:func:`debtsim.engines.sample.thinning_kernels.thin_defaults`) then draws the
 defaults of each obligor on pieces of ``2^L`` sorted scenarios by geometric
 skips at the piece's largest probability, thinned to the exact ``p_s``.
 The piece level of each obligor is chosen once per sampler from a
@@ -86,7 +86,7 @@ class OwnDefaultDraws:
         self, key: FloatArray, scale: FloatArray, theta: FloatArray, members: IntArray
     ) -> IntArray:
         """Cheapest piece level of each member on a representative sorted run."""
-        from debtsim.engines.sample.kernels import LEVEL_MAX, LEVEL_MIN, piece_costs
+        from debtsim.engines.sample.thinning_kernels import LEVEL_MAX, LEVEL_MIN, piece_costs
 
         members = np.asarray(members, dtype=np.int64)
         if members.size == 0 or key.size == 0:
@@ -106,7 +106,7 @@ class OwnDefaultDraws:
 
         The runs are drawn in order from one stream of uniforms of ``rng``.
         """
-        from debtsim.engines.sample.kernels import range_tables, thin_defaults
+        from debtsim.engines.sample.thinning_kernels import range_tables, thin_defaults
 
         cap = max(4096, 4 * rows, self._hint + self._hint // 4)
         out_r = np.empty(cap, dtype=np.int64)

@@ -25,7 +25,7 @@ Links
     and it is the same whatever the chunking.
 Cascade
     Per scenario, depth first from the own defaults along live links
-    (compiled, :func:`debtsim.engines.sample.kernels.cascade`); only links
+    (compiled, :func:`debtsim.engines.sample.cascade_kernels.cascade`); only links
     out of defaulted obligors to creditors not yet in default are looked at.
     Cycles need no special care.
 Importance sampling
@@ -501,7 +501,7 @@ class CascadeSampler:
             cas_r, cas_c = self._cascade(own_r, own_c, rows, start, link_key)
         else:
             cas_r = cas_c = np.zeros(0, dtype=np.int64)
-        from debtsim.engines.sample.kernels import tally
+        from debtsim.engines.sample.cascade_kernels import tally
 
         losses = np.zeros(rows)
         dw = np.zeros(n)
@@ -573,7 +573,7 @@ class CascadeSampler:
         defaulted obligors; a link is looked at only when its creditor has
         not defaulted yet, and at most once.
         """
-        from debtsim.engines.sample.kernels import cascade
+        from debtsim.engines.sample.cascade_kernels import cascade
 
         return cascade(
             np.ascontiguousarray(own_r, dtype=np.int64),

@@ -394,7 +394,7 @@ class SectorSampler:
         dw: FloatArray,
         dw2: FloatArray,
     ) -> tuple[FloatArray, FloatArray, FloatArray]:
-        from debtsim.engines.sample.kernels import tally
+        from debtsim.engines.sample.cascade_kernels import tally
 
         factor_seed, own_seed = block_seed.spawn(2)
         frng = np.random.Generator(np.random.PCG64(factor_seed))

@@ -7,7 +7,7 @@ import math
 import numpy as np
 import pytest
 from scipy import integrate
-from scipy.special import comb, log_ndtr
+from scipy.special import comb
 from scipy.stats import binom, norm
 
 from debtsim.book.records import Book, Link, Obligor
@@ -15,8 +15,6 @@ from debtsim.distribution import LossDistribution
 from debtsim.engines import make_engine
 from debtsim.engines.sample.engine import SampleEngine, plan_importance
 from debtsim.engines.sample.scenario_draws import (
-    _CAP,
-    _KAPPA,
     BLOCK,
     exact_log_normaliser,
     thresholds,
@@ -379,14 +377,6 @@ def test_large_homogeneous_book_tail_matches_binomial_mixture():
         while tail(k_ref) > 1 - a:
             k_ref += 1
         assert abs(v - k_ref) <= 1
-
-
-def test_dense_filter_bound_never_drops_a_default():
-    """The filter's bound is below -log Phi(-x) for all x >= 0 (grid plus monotone gap)."""
-    x = np.linspace(0.0, 12.0, 1_200_001)
-    gap = -log_ndtr(-x) - x**2 / 2  # increasing in x (Mills ratio), so beyond 12 it stays >= cap
-    assert np.all(np.diff(gap) > 0)
-    assert np.all(gap - np.minimum(_KAPPA * x, _CAP) > 0.01)
 
 
 def test_exact_log_normaliser_path_gives_the_same_weights(monkeypatch):

@@ -430,8 +430,8 @@ class SampleEngine(Engine):
         Importance sampling on or off; None turns it on when the highest
         level is at least 0.99.
     chunk : int or None
-        Scenarios drawn at once (memory only, no effect on the result);
-        None picks about 2^19 scenario-obligor pairs per chunk.
+        Scenarios per chunk handed to an observer (the contributions pass;
+        no effect on the result); None picks about 2^19 scenario-obligor pairs.
     workers : int or None
         Threads drawing blocks in parallel (no effect on the result); None
         uses up to two.

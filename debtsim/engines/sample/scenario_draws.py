@@ -8,13 +8,14 @@ depends on the seed and the scenario count only, never on how the work is
 split into chunks or threads.
 
 Own defaults
-    Obligor *i* defaults on its own when ``exp(-E_i) <= p_i(z)`` with
-    ``E_i ~ Exp(1)`` (so ``exp(-E_i) ~ U(0, 1)``).  A cheap dense filter
-    keeps only the pairs with ``E_i >= t_i^2/2 + min(kappa |t_i|, cap) -
-    theta l_i`` (``t_i = min(t_i(z), 0)``, ``t_i(z) = (Phi^-1(PD_i) - sqrt(R_i)
-    z) / sqrt(1 - R_i)``): a lower bound of ``-log p_i`` from the Chernoff and
-    Mills-ratio bounds, so no default is lost; the exact test runs on the
-    few candidates left (about 1.1 to 2 per default).
+    Given ``z``, obligor *i* defaults on its own with ``p_i(z) =
+    Phi(t_i(z))``, ``t_i(z) = (Phi^-1(PD_i) - sqrt(R_i) z) / sqrt(1 - R_i)``
+    (twisted under importance sampling).  No uniform is drawn per obligor
+    and scenario: the block's scenarios are sorted by ``z`` (within each
+    mixture component) and each obligor's defaults are drawn on pieces of
+    sorted scenarios by geometric skips at the piece's largest probability,
+    thinned to the exact ``p_i(z_s)`` (:mod:`debtsim.engines.sample.own_draws`):
+    the model's law exactly, at a cost proportional to the defaults.
 Links
     Whether link *k* is live in scenario *s* is decided by a counter-based
     draw: the SplitMix64 output function applied to the sum of a
@@ -23,9 +24,10 @@ Links
     debtor defaulted and whose creditor has not, at most once per scenario,
     and it is the same whatever the chunking.
 Cascade
-    Breadth-first over all scenarios of a chunk at once: the newly defaulted
-    (scenario, debtor) pairs expand to their out-links, live links mark their
-    creditors, until no new default appears.  Cycles need no special care.
+    Per scenario, depth first from the own defaults along live links
+    (compiled, :func:`debtsim.engines.sample.cascade_kernels.cascade`); only links
+    out of defaulted obligors to creditors not yet in default are looked at.
+    Cycles need no special care.
 Importance sampling
     With a :class:`Proposal`, a scenario comes from one of a few tilted
     models (factor mean shifted, own-default probabilities exponentially
@@ -40,14 +42,15 @@ import math
 from collections.abc import Callable, Iterator
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
-from typing import Any
+from typing import cast
 
 import numpy as np
 from numpy.polynomial import Chebyshev
 from numpy.typing import NDArray
-from scipy.special import expit, logit, logsumexp, ndtr, ndtri
+from scipy.special import logsumexp, ndtr, ndtri
 
-from debtsim._typing import FloatArray, IntArray, SignedArray
+from debtsim._typing import FloatArray, IntArray
+from debtsim.engines.sample.own_draws import OwnDefaultDraws, SortedRun
 from debtsim.model.specification import LinkedFactorModel
 
 __all__ = [
@@ -65,24 +68,33 @@ __all__ = [
 
 #: Scenarios per independent random stream (fixed, so results do not depend on chunking).
 BLOCK = 4096
-#: Scenarios x obligors of a default chunk (the cascade keeps 5 bytes per pair; cache-sized).
+#: Scenarios x obligors of a default chunk handed to an observer.
 CHUNK_ELEMENTS = 1 << 19
-#: Scenarios x obligors of the own-default draws held at once (24 bytes each, cache-sized).
-PIECE_ELEMENTS = 1 << 18
 
 _GOLDEN = np.uint64(0x9E3779B97F4A7C15)
 _MIX1 = np.uint64(0xBF58476D1CE4E5B9)
 _MIX2 = np.uint64(0x94D049BB133111EB)
 _TO_UNIT = 2.0**-53
-#: Dense filter ``-log Phi(-x) >= x^2/2 + min(kappa x, cap)`` for ``x >= 0``: the left side
-#: minus ``x^2/2`` increases in ``x`` (Mills ratio), so a check on a fine grid of ``[0, 12]``
-#: proves it (see the tests); the margin is about 0.02 at the tightest point.
-_KAPPA = 0.79
-_CAP = 1.9
+
+
+def _weighted_count(index: IntArray, weights: FloatArray, size: int) -> FloatArray:
+    """``out[j] = sum of weights where index == j`` (``np.bincount`` with weights)."""
+    return cast(FloatArray, np.bincount(index, weights=weights, minlength=size))
+
+
+def _liveness_bar(q: FloatArray) -> NDArray[np.uint64]:
+    """Integer bar of each link: ``(h >> 11) < bar``  <=>  ``(h >> 11) 2^-53 < q``.
+
+    The uniform of a hash ``h`` is its top 53 bits times ``2^-53``; ``q 2^53``
+    is exact in floating point, so the comparison is the same in integers
+    with ``bar = ceil(q 2^53)``.
+    """
+    scaled = np.ceil(np.clip(np.asarray(q, dtype=float), 0.0, 1.0) * 2.0**53)
+    return scaled.astype(np.uint64)
 
 
 def default_chunk(n_obligors: int) -> int:
-    """Scenarios per chunk for a book of ``n_obligors``: about 2^19 scenario-obligor pairs."""
+    """Scenarios per observer chunk for a book of ``n_obligors``: about 2^19 pairs."""
     return max(1, min(BLOCK, CHUNK_ELEMENTS // max(n_obligors, 1)))
 
 
@@ -303,8 +315,9 @@ class CascadeSampler:
     proposal : Proposal or None
         None samples the model itself (plain Monte Carlo).
     chunk : int or None
-        Scenarios whose cascade runs at once (at most :data:`BLOCK`); None
-        picks about 2^19 scenario-obligor pairs.  Does not change the result.
+        Scenarios per :class:`ChunkDefaults` handed to ``observe`` (at most
+        :data:`BLOCK`); None picks about 2^19 scenario-obligor pairs.  Does
+        not change the result.
     workers : int
         Threads working on blocks in parallel.  Does not change the result.
     observe : callable, optional
@@ -327,26 +340,52 @@ class CascadeSampler:
         self._n = n
         self._proposal = proposal
         self._chunk = max(1, min(BLOCK, chunk or default_chunk(n)))
-        self._piece = max(1, min(self._chunk, PIECE_ELEMENTS // max(n, 1)))
         self._workers = max(1, int(workers))
         self._a, self._b = thresholds(model)
-        # the dense filter works with t / sqrt(2): q = min(t, 0)^2 / 2
-        self._a2 = self._a / math.sqrt(2.0)
-        self._b2 = self._b / math.sqrt(2.0)
         self._loss = np.asarray(model.loss_given_default, dtype=float)
         scale = proposal.loss_scale if proposal is not None else 1.0
         self._scaled_loss = self._loss / scale
+        # own defaults: p_i(z) = Phi(a_i - b_i z) = F(alpha k + gamma c) with k = z, c = 1
+        finite = np.isfinite(self._a)
+        self._members = np.flatnonzero(finite).astype(np.int64)
+        self._own = OwnDefaultDraws(
+            alpha=np.where(finite, -self._b, 0.0),
+            gamma=np.where(finite, self._a, 0.0),
+            sloss=self._scaled_loss,
+            always=np.flatnonzero(self._a == np.inf),
+        )
+        self._levels = self._choose_levels()
         # links as CSR by debtor
         m = model.n_links
         self._m = m
         order = np.argsort(model.debtor, kind="stable")
         self._out_creditor = np.asarray(model.creditor, dtype=np.int64)[order]
         self._out_q = np.asarray(model.contagion, dtype=float)[order]
+        self._bar = _liveness_bar(self._out_q)
         # a 64-bit key per link (SplitMix64 of its book index), added to a per-scenario key
         self._link_key = _mix64((order.astype(np.uint64) + np.uint64(1)) * _MIX2)
         counts = np.bincount(np.asarray(model.debtor, dtype=np.int64), minlength=n)
-        self._outdeg = counts.astype(np.int64)
         self._indptr = np.concatenate(([0], np.cumsum(counts))).astype(np.int64)
+
+    def _choose_levels(self) -> list[IntArray]:
+        """Piece level of each obligor in each mixture component (speed only, not the law).
+
+        Chosen on the component's expected share of a block, at the normal
+        quantiles of its factor law, with its twist.
+        """
+        prop = self._proposal
+        parts: list[tuple[float, float, Tilt | None]] = (
+            [(1.0, 0.0, None)] if prop is None
+            else [(sh, t.shift, t) for t, sh in zip(prop.tilts, prop.shares, strict=True)]
+            + [(prop.plain_share, 0.0, None)]
+        )
+        out = []
+        for share, shift, tilt in parts:
+            rows = max(1, round(share * BLOCK))
+            z = shift + ndtri((np.arange(rows) + 0.5) / rows)
+            theta = tilt.twist(z) if tilt is not None else np.zeros(rows)
+            out.append(self._own.levels(z, np.ones(rows), theta, self._members))
+        return out
 
     # ------------------------------------------------------------------ public
     def run(
@@ -421,6 +460,7 @@ class CascadeSampler:
         if prop is None:
             z = factor_rng.standard_normal(rows)
             theta_draw = np.zeros(rows)
+            comp = np.zeros(rows, dtype=np.int64)
         else:
             k = len(prop.tilts)
             comp = np.searchsorted(np.cumsum(prop.shares), factor_rng.random(rows), side="right")
@@ -435,61 +475,79 @@ class CascadeSampler:
                     z, theta_all[j], tilt
                 )
             theta_draw = theta_all[comp, np.arange(rows)]
-            log_shares = np.log(np.array(prop.shares))[:, None]
-            log_plain = math.log(prop.plain_share)
 
+        # own defaults: one run per mixture component, sorted by the factor
+        runs = []
+        ones = np.ones(rows)
+        for c, level in enumerate(self._levels):
+            idx = np.flatnonzero(comp == c)
+            idx = idx[np.argsort(z[idx], kind="stable")]
+            runs.append(SortedRun(key=z[idx], scale=ones[: idx.size], theta=theta_draw[idx],
+                                  scen=idx.astype(np.int64), members=self._members,
+                                  level=level))
+        own_r, own_c = self._own.draw(own_rng, runs, rows)
         n = self._n
-        chunk, piece = self._chunk, self._piece
-        e_buf = np.empty((piece, n))
-        work = np.empty((2, piece, n))
-        losses = np.empty(rows)
-        weights = np.ones(rows)
+        if prop is not None:
+            scaled_own = _weighted_count(own_r, self._scaled_loss[own_c], rows)
+            log_ratio = log_base + theta_all[:k] * scaled_own[None, :]
+            log_shares = np.log(np.array(prop.shares))[:, None]
+            log_mix = np.logaddexp(
+                math.log(prop.plain_share), logsumexp(log_shares + log_ratio, axis=0)
+            )
+            weights = np.exp(-log_mix)
+        else:
+            weights = np.ones(rows)
+        if self._m:
+            cas_r, cas_c = self._cascade(own_r, own_c, rows, start, link_key)
+        else:
+            cas_r = cas_c = np.zeros(0, dtype=np.int64)
+        from debtsim.engines.sample.cascade_kernels import tally
+
+        losses = np.zeros(rows)
         dw = np.zeros(n)
         dw2 = np.zeros(n)
+        tally(own_r, own_c, self._loss, weights, losses, dw, dw2)
+        tally(cas_r, cas_c, self._loss, weights, losses, dw, dw2)
         observed: list[object] = []
-        for lo in range(0, rows, chunk):
-            hi = min(rows, lo + chunk)
-            r = hi - lo
-            pairs_r, pairs_c = [], []
-            for plo in range(lo, hi, piece):
-                phi = min(hi, plo + piece)
-                e = e_buf[: phi - plo]
-                own_rng.standard_exponential(out=e)
-                pr, pc = self._own_defaults(
-                    e, work[:, : phi - plo], z[plo:phi], theta_draw[plo:phi]
-                )
-                pairs_r.append(pr + (plo - lo))
-                pairs_c.append(pc)
-            own_r, own_c = np.concatenate(pairs_r), np.concatenate(pairs_c)
-            own_loss = np.bincount(own_r, weights=self._loss[own_c], minlength=r)
-            if prop is not None:
-                scaled_own = np.bincount(own_r, weights=self._scaled_loss[own_c], minlength=r)
-                log_ratio = log_base[:, lo:hi] + theta_all[:k, lo:hi] * scaled_own[None, :]
-                log_mix = np.logaddexp(log_plain, logsumexp(log_shares + log_ratio, axis=0))
-                w = np.exp(-log_mix)
-                weights[lo:hi] = w
-            else:
-                w = weights[lo:hi]
-            if self._m:
-                cas_r, cas_c = self._cascade(own_r, own_c, r, start + lo, link_key)
-                extra = np.bincount(cas_r, weights=self._loss[cas_c], minlength=r)
-                losses[lo:hi] = own_loss + extra
-                dw += np.bincount(cas_c, weights=w[cas_r], minlength=n)
-                dw2 += np.bincount(cas_c, weights=w[cas_r] ** 2, minlength=n)
-            else:
-                losses[lo:hi] = own_loss
-                cas_r = cas_c = np.zeros(0, dtype=np.int64)
-            if self._observe is not None:
-                observed.append(self._observe(ChunkDefaults(
-                    first=start + lo, losses=losses[lo:hi], weights=w, own_rows=own_r,
-                    own_cols=own_c, contagion_rows=cas_r, contagion_cols=cas_c,
-                )))
-            dw += np.bincount(own_c, weights=w[own_r], minlength=n)
-            dw2 += np.bincount(own_c, weights=w[own_r] ** 2, minlength=n)
+        if self._observe is not None:
+            observed = self._observed(start, losses, weights, own_r, own_c, cas_r, cas_c)
         return _BlockResult(
             losses=losses, weights=weights, factor=z, default_weight=dw, default_weight_sq=dw2,
             observed=observed,
         )
+
+    def _observed(
+        self,
+        start: int,
+        losses: FloatArray,
+        weights: FloatArray,
+        own_r: IntArray,
+        own_c: IntArray,
+        cas_r: IntArray,
+        cas_c: IntArray,
+    ) -> list[object]:
+        """Hand the block's defaults to the observer, chunk by chunk in scenario order."""
+        assert self._observe is not None
+        rows = losses.size
+        own_o = np.argsort(own_r, kind="stable")
+        cas_o = np.argsort(cas_r, kind="stable")
+        own_r, own_c, cas_r, cas_c = own_r[own_o], own_c[own_o], cas_r[cas_o], cas_c[cas_o]
+        edges = np.arange(0, rows + self._chunk, self._chunk).clip(max=rows)
+        own_cut = np.searchsorted(own_r, edges)
+        cas_cut = np.searchsorted(cas_r, edges)
+        out = []
+        for b in range(edges.size - 1):
+            lo, hi = int(edges[b]), int(edges[b + 1])
+            if hi <= lo:
+                continue
+            o = slice(own_cut[b], own_cut[b + 1])
+            c = slice(cas_cut[b], cas_cut[b + 1])
+            out.append(self._observe(ChunkDefaults(
+                first=start + lo, losses=losses[lo:hi], weights=weights[lo:hi],
+                own_rows=own_r[o] - lo, own_cols=own_c[o],
+                contagion_rows=cas_r[c] - lo, contagion_cols=cas_c[c],
+            )))
+        return out
 
     def _log_normaliser(self, z: FloatArray, theta: FloatArray, tilt: Tilt) -> FloatArray:
         """``psi(theta(z), z)`` of one tilt for each scenario (0 where theta is 0)."""
@@ -505,93 +563,21 @@ class CascadeSampler:
             )
         return out
 
-    def _own_defaults(
-        self, e: FloatArray, work: FloatArray, z: FloatArray, theta: FloatArray
-    ) -> tuple[IntArray, IntArray]:
-        """(scenario, obligor) pairs of own defaults in one chunk.
-
-        ``e`` holds the Exp(1) draws, ``work`` is scratch of shape ``(2,) +
-        e.shape`` and ``theta`` the twist of each scenario (0 if untwisted).
-        """
-        s, q = work[0], work[1]
-        # s = min(t, 0) / sqrt(2);  q = s^2 + min(-kappa sqrt(2) s, cap)  <=  -log p
-        np.multiply(z[:, None], self._b2[None, :], out=s)
-        np.subtract(self._a2[None, :], s, out=s)
-        np.minimum(s, 0.0, out=s)
-        np.multiply(s, s, out=q)
-        s *= -_KAPPA * math.sqrt(2.0)
-        np.minimum(s, _CAP, out=s)
-        q += s
-        if np.any(theta > 0.0):
-            # p_theta <= p exp(theta l): lower the bar by theta l where theta > 0
-            np.multiply.outer(np.maximum(theta, 0.0), self._scaled_loss, out=s)
-            q -= s
-        rows, cols = np.nonzero(e >= q)
-        if rows.size == 0:
-            return rows.astype(np.int64), cols.astype(np.int64)
-        # exact test on the candidates: exp(-E) <= p_theta
-        t = self._a[cols] - self._b[cols] * z[rows]
-        p = ndtr(t)
-        st = theta[rows] * self._scaled_loss[cols]
-        tw = st != 0.0
-        if tw.any():
-            with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
-                # p_theta = p e^s / (1 - p + p e^s), stable for any s and p in [0, 1]
-                p[tw] = expit(logit(p[tw]) + st[tw])
-        hit = np.exp(-e[rows, cols]) <= p
-        return rows[hit].astype(np.int64), cols[hit].astype(np.int64)
-
     def _cascade(
         self, own_r: IntArray, own_c: IntArray, rows: int, first: int, link_key: np.uint64
     ) -> tuple[IntArray, IntArray]:
-        """(scenario, obligor) pairs defaulted by contagion only, in one chunk.
+        """(scenario, obligor) pairs defaulted by contagion only, for ``rows`` scenarios.
 
-        ``first`` is the global index of the chunk's first scenario (it keys
-        the liveness draws).  Work is proportional to the out-links of the
-        defaulted obligors; a link is drawn only when its creditor has not
-        defaulted yet, and at most once.
+        ``first`` is the global index of the first scenario (it keys the
+        liveness draws).  Work is proportional to the out-links of the
+        defaulted obligors; a link is looked at only when its creditor has
+        not defaulted yet, and at most once.
         """
-        n = self._n
-        cells = rows * n
-        itype: type[np.signedinteger[Any]] = (
-            np.int32 if cells < 2**31 and self._m < 2**31 else np.int64
+        from debtsim.engines.sample.cascade_kernels import cascade
+
+        return cascade(
+            np.ascontiguousarray(own_r, dtype=np.int64),
+            np.ascontiguousarray(own_c, dtype=np.int64),
+            rows, first, link_key, self._indptr, self._out_creditor, self._bar,
+            self._link_key,
         )
-        defaulted = np.zeros(cells, dtype=bool)
-        stamp = np.empty(cells, dtype=itype)
-        own: SignedArray = (own_r * n + own_c).astype(itype)
-        defaulted[own] = True
-        outdeg: SignedArray = self._outdeg.astype(itype)
-        indptr: SignedArray = self._indptr.astype(itype)
-        creditor: SignedArray = self._out_creditor.astype(itype)
-        frontier = own[outdeg[own_c] > 0]
-        found: list[IntArray] = []
-        # per-scenario and per-link 64-bit keys; liveness = hash(row key + link key)
-        row_key = _mix64(
-            (np.arange(first, first + rows, dtype=np.uint64) + np.uint64(1)) * _GOLDEN + link_key
-        )
-        while frontier.size:
-            fr, fc = np.divmod(frontier, n)
-            counts = outdeg[fc]
-            ends = np.cumsum(counts, dtype=itype)
-            total = int(ends[-1])
-            pos = np.repeat(indptr[fc] - ends + counts, counts)
-            pos += np.arange(total, dtype=itype)
-            base = np.repeat(fr * n, counts)
-            idx = base + creditor[pos]
-            fresh = np.flatnonzero(~defaulted[idx])
-            idx, pos = idx[fresh], pos[fresh]
-            key = row_key[base[fresh] // n] + self._link_key[pos]
-            idx = idx[_unit(_mix64(key)) < self._out_q[pos]]
-            if idx.size == 0:
-                break
-            order = np.arange(idx.size, dtype=itype)
-            stamp[idx] = order
-            idx = idx[stamp[idx] == order]
-            defaulted[idx] = True
-            found.append(idx)
-            frontier = idx[outdeg[idx % n] > 0]
-        if not found:
-            empty = np.zeros(0, dtype=np.int64)
-            return empty, empty
-        r, c = np.divmod(np.concatenate(found).astype(np.int64), n)
-        return r, c

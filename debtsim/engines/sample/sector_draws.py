@@ -9,9 +9,12 @@ sector factors ``Y = M X`` and, under Student-t, ``W ~ chi^2_nu``:
 
 Obligor *i* defaults on its own when ``sqrt(R_i) Y_s(i) + sqrt(1-R_i) e_i <
 t_i sqrt(W / nu)`` (``t_i`` = ``Phi^-1(PD_i)``, or ``t_nu^-1(PD_i)`` with the
-scale; scale 1 when Gaussian), with ``e_i ~ N(0, 1)`` drawn per pair.
-Contagion then runs along live links exactly as in the one-factor sampler
-(:meth:`CascadeSampler._cascade`, the same counter-based liveness draws).
+scale; scale 1 when Gaussian), ``e_i ~ N(0, 1)``: given the factors, with
+probability ``Phi((t_i sqrt(W / nu) - sqrt(R_i) Y_s(i)) / sqrt(1 - R_i))``,
+drawn by exact thinning without a draw per obligor and scenario (see
+:class:`SectorSampler`).  Contagion then runs along live links exactly as in
+the one-factor sampler (:meth:`CascadeSampler._cascade`, the same
+counter-based liveness draws).
 
 Importance sampling (Glasserman & Li 2005, the multi-factor mean shift): for
 each confidence level ``a`` a proposal shifts ``X`` to ``N(mu_a, I)`` and,
@@ -49,7 +52,8 @@ from scipy.optimize import minimize
 from scipy.special import ndtr
 from scipy.stats import chi2
 
-from debtsim._typing import FloatArray
+from debtsim._typing import FloatArray, IntArray
+from debtsim.engines.sample.own_draws import OwnDefaultDraws, SortedRun
 from debtsim.engines.sample.scenario_draws import BLOCK, CascadeSampler, ScenarioSet
 from debtsim.model.dependence import FactorStructure, default_threshold
 from debtsim.model.specification import LinkedFactorModel
@@ -59,8 +63,8 @@ __all__ = ["SectorProposal", "SectorSampler", "SectorTilt", "factor_matrix", "pl
 
 #: Factor draws used to find each level's target loss.
 TARGET_DRAWS = 200_000
-#: Scenario-obligor pairs drawn at once.
-PAIRS = 1 << 20
+#: Seed of the pilot block that sets the piece sizes of the own-default draws.
+_PILOT_SEED = 20261202
 
 
 def factor_matrix(structure: FactorStructure) -> FloatArray:
@@ -237,7 +241,17 @@ def _most_likely_point(
 
 
 class SectorSampler:
-    """Draws scenarios of a model with a factor structure, optionally from a proposal."""
+    """Draws scenarios of a model with a factor structure, optionally from a proposal.
+
+    Own defaults are drawn sector by sector by exact thinning
+    (:mod:`debtsim.engines.sample.own_draws`): given ``(Y, W)``, obligor *i*
+    of sector *g* defaults with ``Phi(A_i c - B_i Y_g)``, ``A_i = t_i /
+    sqrt(1 - R_i)``, ``B_i = sqrt(R_i / (1 - R_i))``, ``c = sqrt(W / nu)``
+    (1 when Gaussian).  Scenarios are sorted per sector by ``Y_g``
+    (Gaussian) or by ``k = A_g c - B_g Y_g`` with the sector's mean
+    coefficients (Student-t), and each obligor's probability is written
+    ``Phi(alpha_i k + gamma_i c)``.
+    """
 
     def __init__(self, model: LinkedFactorModel, proposal: SectorProposal | None = None) -> None:
         structure = model.dependence
@@ -252,12 +266,51 @@ class SectorSampler:
         )
         r = np.asarray(model.asset_correlation, dtype=float)
         thr = default_threshold(model.pd, self._nu)
-        self._thr = thr
-        self._sqrt_r = np.sqrt(r)
-        self._sqrt_1r = np.sqrt(1.0 - r)
         self._loss = np.asarray(model.loss_given_default, dtype=float)
         self._proposal = proposal
         self._links = CascadeSampler(model) if model.n_links else None
+        finite = np.isfinite(thr)
+        a_coef = np.where(finite, thr, 0.0) / np.sqrt(1.0 - r)
+        b_coef = np.sqrt(r / (1.0 - r))
+        n_sectors = self._m.shape[0]
+        self._groups: list[IntArray] = []
+        # key of sector g: y (Gaussian), or k_mean * c - b_mean * y (Student-t)
+        self._key_coef = np.zeros((n_sectors, 2))
+        alpha = np.zeros(model.n_obligors)
+        gamma = np.zeros(model.n_obligors)
+        for g in range(n_sectors):
+            members = np.flatnonzero((self._sector == g) & finite).astype(np.int64)
+            self._groups.append(members)
+            if members.size == 0:
+                continue
+            if self._nu is None:
+                self._key_coef[g] = (0.0, 1.0)
+                alpha[members] = -b_coef[members]
+                gamma[members] = a_coef[members]
+                continue
+            a_bar = float(a_coef[members].mean())
+            b_bar = float(b_coef[members].mean())
+            if b_bar > 0.0:
+                self._key_coef[g] = (a_bar, -b_bar)
+                alpha[members] = b_coef[members] / b_bar
+                gamma[members] = a_coef[members] - b_coef[members] * a_bar / b_bar
+            else:  # no obligor of the sector loads on it: p = Phi(A c)
+                self._key_coef[g] = (1.0, 0.0)
+                alpha[members] = a_coef[members]
+        self._own = OwnDefaultDraws(
+            alpha=alpha, gamma=gamma, sloss=np.zeros(model.n_obligors),
+            always=np.flatnonzero(thr == np.inf),
+        )
+        # piece sizes from a pilot block of the same factor law (speed only, never the law)
+        pilot = np.random.Generator(np.random.PCG64(np.random.SeedSequence(_PILOT_SEED)))
+        x, w, _ = self._factors(pilot, BLOCK)
+        self._levels = []
+        for g, members in enumerate(self._groups):
+            key, scale = self._key(x, w, g)
+            order = np.argsort(key, kind="stable")
+            self._levels.append(
+                self._own.levels(key[order], scale[order], np.zeros(BLOCK), members)
+            )
 
     def run(
         self,
@@ -292,18 +345,10 @@ class SectorSampler:
             default_weight_sq=dw2,
         )
 
-    def _block(
-        self,
-        block_seed: np.random.SeedSequence,
-        start: int,
-        rows: int,
-        link_key: np.uint64,
-        dw: FloatArray,
-        dw2: FloatArray,
-    ) -> tuple[FloatArray, FloatArray, FloatArray]:
-        factor_seed, own_seed = block_seed.spawn(2)
-        frng = np.random.Generator(np.random.PCG64(factor_seed))
-        orng = np.random.Generator(np.random.PCG64(own_seed))
+    def _factors(
+        self, frng: np.random.Generator, rows: int
+    ) -> tuple[FloatArray, FloatArray | None, FloatArray]:
+        """Factors ``X``, mixing variable ``W`` (None when Gaussian) and weights of a block."""
         d = self._m.shape[1]
         nu = self._nu
         prop = self._proposal
@@ -328,34 +373,47 @@ class SectorSampler:
                     term = term - 0.5 * nu * math.log(c) - 0.5 * w * (1.0 / c - 1.0)
                 log_terms.append(term)
             weights = np.exp(-np.logaddexp.reduce(np.stack(log_terms), axis=0))
-        y = x @ self._m.T
-        scale = np.ones(rows) if w is None else np.sqrt(w / nu)  # type: ignore[operator]
-        n = self._model.n_obligors
-        losses = np.empty(rows)
-        step = max(1, PAIRS // max(n, 1))
-        finite = np.isfinite(self._thr)
-        thr = np.where(finite, self._thr, 0.0)
-        always = self._thr == np.inf
-        never = self._thr == -np.inf
-        for lo in range(0, rows, step):
-            hi = min(rows, lo + step)
-            e = orng.standard_normal((hi - lo, n))
-            asset = self._sqrt_r[None, :] * y[lo:hi, self._sector] + self._sqrt_1r[None, :] * e
-            hit = asset < thr[None, :] * scale[lo:hi, None]
-            hit[:, always] = True
-            hit[:, never] = False
-            own_r, own_c = np.nonzero(hit)
-            own_r = own_r.astype(np.int64)
-            own_c = own_c.astype(np.int64)
-            r = hi - lo
-            chunk_loss = np.bincount(own_r, weights=self._loss[own_c], minlength=r)
-            wc = weights[lo:hi]
-            if self._links is not None:
-                cas_r, cas_c = self._links._cascade(own_r, own_c, r, start + lo, link_key)
-                chunk_loss += np.bincount(cas_r, weights=self._loss[cas_c], minlength=r)
-                dw += np.bincount(cas_c, weights=wc[cas_r], minlength=n)
-                dw2 += np.bincount(cas_c, weights=wc[cas_r] ** 2, minlength=n)
-            dw += np.bincount(own_c, weights=wc[own_r], minlength=n)
-            dw2 += np.bincount(own_c, weights=wc[own_r] ** 2, minlength=n)
-            losses[lo:hi] = chunk_loss
+        return x, w, weights
+
+    def _key(
+        self, x: FloatArray, w: FloatArray | None, g: int
+    ) -> tuple[FloatArray, FloatArray]:
+        """Sort key and second coordinate ``c`` of sector ``g`` for each scenario."""
+        y = x @ self._m[g]
+        scale = np.ones(x.shape[0]) if w is None or self._nu is None else np.sqrt(w / self._nu)
+        ck, cy = self._key_coef[g]
+        key = y if self._nu is None else ck * scale + cy * y
+        return np.asarray(key, dtype=float), scale
+
+    def _block(
+        self,
+        block_seed: np.random.SeedSequence,
+        start: int,
+        rows: int,
+        link_key: np.uint64,
+        dw: FloatArray,
+        dw2: FloatArray,
+    ) -> tuple[FloatArray, FloatArray, FloatArray]:
+        from debtsim.engines.sample.cascade_kernels import tally
+
+        factor_seed, own_seed = block_seed.spawn(2)
+        frng = np.random.Generator(np.random.PCG64(factor_seed))
+        orng = np.random.Generator(np.random.PCG64(own_seed))
+        x, w, weights = self._factors(frng, rows)
+        runs = []
+        zeros = np.zeros(rows)
+        for g, members in enumerate(self._groups):
+            if members.size == 0:
+                continue
+            key, scale = self._key(x, w, g)
+            order = np.argsort(key, kind="stable")
+            runs.append(SortedRun(key=key[order], scale=scale[order], theta=zeros,
+                                  scen=order.astype(np.int64), members=members,
+                                  level=self._levels[g]))
+        own_r, own_c = self._own.draw(orng, runs, rows)
+        losses = np.zeros(rows)
+        tally(own_r, own_c, self._loss, weights, losses, dw, dw2)
+        if self._links is not None:
+            cas_r, cas_c = self._links._cascade(own_r, own_c, rows, start, link_key)
+            tally(cas_r, cas_c, self._loss, weights, losses, dw, dw2)
         return losses, weights, x[:, 0].copy()

@@ -57,6 +57,7 @@ from typing import Any
 
 import numpy as np
 from numpy.polynomial.legendre import leggauss
+from numpy.typing import NDArray
 from scipy import sparse
 from scipy.special import ndtr
 from scipy.stats import chi2
@@ -67,10 +68,22 @@ from debtsim.engines.exact.loss_grid import (
     SERIES_TOLERANCE,
     WINDOW_TAIL,
     AtomConvolution,
+    SeriesKernel,
     bernstein_halfwidth,
     grid_law,
     place_window,
     product_law,
+)
+from debtsim.engines.exact.sector_mixing import (
+    WEIGHT_CUT,
+    SectorNodeLaws,
+    chernoff_window,
+    convolve_pieces,
+    log_mgf_bounds,
+    mix_rows,
+    mixture_log_mgf,
+    theta_ladder,
+    trim_tails,
 )
 from debtsim.model.dependence import FactorStructure, default_threshold, sector_conditional_pd
 from debtsim.model.factor_grid import FactorGrid, adaptive_grid, gauss_hermite
@@ -567,13 +580,40 @@ def sector_law(
         mixture = np.zeros(plan.top + 1)
     truncation = 0.0
     widest = 0
+    cut_mass = 0.0
+    # blocks of one sector on a shared grid without link groups: one kernel per run
+    fast: dict[int, _FastSector] = {}
+    if not atoms_mode:
+        for b_index, (b, rule) in enumerate(zip(blocks, rules, strict=True)):
+            if rule.kind == "shared" and not b.groups:
+                fast[b_index] = _FastSector.build(b, rule, threshold, r, plan.k)
+                cut_mass = max(cut_mass, fast[b_index].cut_mass)
+    if fast:
+        positive = theta_ladder(
+            max(int(f.k.max(initial=1)) for f in fast.values()), int(plan.top)
+        )
+        thetas = np.concatenate([-positive[::-1], positive])
+    widest_total = 0
     for m, (w_value, w_weight) in enumerate(zip(w_nodes, w_weights, strict=True)):
         scale = 1.0 if nu is None else math.sqrt(float(w_value) / nu)
         block_laws: list[FloatArray] = []
+        node_laws: dict[int, SectorNodeLaws] = {}
         for b_index, (b, rule) in enumerate(zip(blocks, rules, strict=True)):
+            inner_w = np.asarray(g_grid.weights @ rule.weights).ravel()  # inner node weights
+            if b_index in fast:
+                fs = fast[b_index]
+                cls_p = sector_conditional_pd(fs.threshold, fs.r, rule.y[:, 0], scale)
+                default_probability[b.members] += w_weight * (inner_w @ cls_p)[fs.of_member]
+                node_laws[b_index] = SectorNodeLaws.compute(fs.kernel, cls_p, fs.needed, fs.top)
+                node_mgf = np.zeros((cls_p.shape[0], thetas.size))
+                node_mgf[fs.needed] = log_mgf_bounds(cls_p[fs.needed], fs.k, fs.count, thetas)
+                fs.log_mgf = mixture_log_mgf(fs.weights, node_mgf)
+                truncation = max(truncation, node_laws[b_index].truncation)
+                widest = max(widest, node_laws[b_index].widest)
+                block_laws.append(np.zeros((0, 0)))
+                continue
             pos_of = {int(sct): j for j, sct in enumerate(b.sectors)}
             cols = np.array([pos_of[int(sector_of[i])] for i in b.members.tolist()], dtype=np.int64)
-            inner_w = np.asarray(g_grid.weights @ rule.weights).ravel()  # inner node weights
             laws, marg, stats = _block_inner_laws(
                 b,
                 rule,
@@ -593,16 +633,43 @@ def sector_law(
         if atoms_mode:
             assert total_support is not None
             probs = total_support.apply(block_laws)
+            mixture += w_weight * (g_grid.weights @ probs)
         else:
-            offset, probs = product_law([(0, bl) for bl in block_laws])
-            assert offset == 0
-            if probs.shape[1] < plan.top + 1:
-                probs = np.pad(probs, ((0, 0), (0, plan.top + 1 - probs.shape[1])))
-            probs = probs[:, : plan.top + 1]
-            np.clip(probs, 0.0, None, out=probs)
-            peak = probs.max(axis=1, keepdims=True)
-            probs[probs < _NOISE_FLOOR * peak] = 0.0
-        mixture += w_weight * (g_grid.weights @ probs)
+            tail = WINDOW_TAIL / len(blocks)
+            for j, g_weight in enumerate(g_grid.weights.tolist()):
+                pieces: list[tuple[int, FloatArray]] = []
+                spread = [0, 0]  # range of the blocks outside the Chernoff bound
+                total_mgf = np.zeros(thetas.size) if fast else None
+                for b_index, bl in enumerate(block_laws):
+                    if b_index in fast:
+                        fs = fast[b_index]
+                        off, law = mix_rows(node_laws[b_index], fs.weights[j])
+                        assert total_mgf is not None
+                        assert fs.log_mgf is not None
+                        total_mgf += fs.log_mgf[j]
+                    else:
+                        live = np.flatnonzero(bl[j])
+                        off = int(live[0])
+                        law = bl[j, off : int(live[-1]) + 1]
+                    piece = trim_tails(off, law, tail)
+                    pieces.append(piece)
+                    if b_index not in fast:
+                        spread[0] += piece[0]
+                        spread[1] += piece[0] + piece[1].size - 1
+                window = None
+                if total_mgf is not None:
+                    c_lo, c_hi = chernoff_window(total_mgf, thetas, WINDOW_TAIL)
+                    window = (
+                        int(math.floor(c_lo)) + spread[0],
+                        int(math.ceil(c_hi)) + spread[1],
+                    )
+                off, law = convolve_pieces(pieces, window)
+                widest_total = max(widest_total, law.size)
+                end = min(off + law.size, plan.top + 1)
+                law = law[: end - off]
+                np.clip(law, 0.0, None, out=law)
+                law[law < _NOISE_FLOOR * law.max()] = 0.0
+                mixture[off:end] += (w_weight * g_weight) * law
         if progress is not None:
             progress(m + 1, w_nodes.size)
 
@@ -658,6 +725,8 @@ def sector_law(
         "factor_truncation_mass": float(2.0 * ndtr(-FACTOR_LIMIT))
         if g_grid.method.startswith("adaptive")
         else 0.0,
+        "sector_weight_cut_mass": float(cut_mass),
+        "widest_global_window": int(widest_total),
     }
     return SectorLaw(losses, probs_out, default_probability, settings, diagnostics)
 
@@ -672,6 +741,47 @@ def _method_text(structure: FactorStructure, kinds: list[str]) -> str:
     if structure.student_t:
         text += "; Student-t mixing variable integrated outermost"
     return text
+
+
+@dataclass
+class _FastSector:
+    """A one-sector block without link groups on its shared grid, prepared once per run."""
+
+    kernel: SeriesKernel
+    threshold: FloatArray  # per class
+    r: FloatArray  # per class
+    k: IntArray  # per class
+    count: FloatArray  # per class
+    of_member: IntArray  # class of each block member
+    weights: FloatArray  # (global nodes, sector nodes), below WEIGHT_CUT dropped
+    needed: NDArray[np.bool_]  # sector nodes some global node uses
+    top: int
+    cut_mass: float  # largest dropped weight of one global node
+    log_mgf: FloatArray | None = None  # (global nodes, thetas) bounds, per mixing node
+
+    @classmethod
+    def build(
+        cls, block: _Block, rule: _InnerRule, threshold: FloatArray, r: FloatArray, k: IntArray
+    ) -> _FastSector:
+        members = block.members
+        keys = np.stack([threshold[members], r[members], k[members].astype(float)], axis=1)
+        uniq, inverse, counts = np.unique(keys, axis=0, return_inverse=True, return_counts=True)
+        kernel = SeriesKernel(uniq[:, 2].astype(np.int64), counts.astype(float))
+        dense = np.asarray(rule.weights, dtype=float)
+        kept = np.where(dense >= WEIGHT_CUT, dense, 0.0)
+        cut = float(np.max(dense.sum(axis=1) - kept.sum(axis=1)))
+        return cls(
+            kernel,
+            uniq[:, 0],
+            uniq[:, 1],
+            uniq[:, 2].astype(np.int64),
+            counts.astype(float),
+            inverse.ravel().astype(np.int64),
+            kept,
+            np.asarray((kept > 0).any(axis=0)),
+            int(k[members].sum()),
+            max(cut, 0.0),
+        )
 
 
 def _block_atoms(

@@ -77,13 +77,10 @@ from debtsim.engines.exact.loss_grid import (
 from debtsim.engines.exact.sector_mixing import (
     WEIGHT_CUT,
     SectorNodeLaws,
-    chernoff_window,
-    convolve_pieces,
+    add_global_laws,
     log_mgf_bounds,
-    mix_rows,
     mixture_log_mgf,
     theta_ladder,
-    trim_tails,
 )
 from debtsim.model.dependence import FactorStructure, default_threshold, sector_conditional_pd
 from debtsim.model.factor_grid import FactorGrid, adaptive_grid, gauss_hermite
@@ -604,9 +601,11 @@ def sector_law(
                 fs = fast[b_index]
                 cls_p = sector_conditional_pd(fs.threshold, fs.r, rule.y[:, 0], scale)
                 default_probability[b.members] += w_weight * (inner_w @ cls_p)[fs.of_member]
-                node_laws[b_index] = SectorNodeLaws.compute(fs.kernel, cls_p, fs.needed, fs.top)
                 node_mgf = np.zeros((cls_p.shape[0], thetas.size))
                 node_mgf[fs.needed] = log_mgf_bounds(cls_p[fs.needed], fs.k, fs.count, thetas)
+                node_laws[b_index] = SectorNodeLaws.compute(
+                    fs.kernel, cls_p, fs.needed, fs.top, node_mgf, thetas
+                )
                 fs.log_mgf = mixture_log_mgf(fs.weights, node_mgf)
                 truncation = max(truncation, node_laws[b_index].truncation)
                 widest = max(widest, node_laws[b_index].widest)
@@ -635,41 +634,20 @@ def sector_law(
             probs = total_support.apply(block_laws)
             mixture += w_weight * (g_grid.weights @ probs)
         else:
-            tail = WINDOW_TAIL / len(blocks)
-            for j, g_weight in enumerate(g_grid.weights.tolist()):
-                pieces: list[tuple[int, FloatArray]] = []
-                spread = [0, 0]  # range of the blocks outside the Chernoff bound
-                total_mgf = np.zeros(thetas.size) if fast else None
-                for b_index, bl in enumerate(block_laws):
-                    if b_index in fast:
-                        fs = fast[b_index]
-                        off, law = mix_rows(node_laws[b_index], fs.weights[j])
-                        assert total_mgf is not None
-                        assert fs.log_mgf is not None
-                        total_mgf += fs.log_mgf[j]
-                    else:
-                        live = np.flatnonzero(bl[j])
-                        off = int(live[0])
-                        law = bl[j, off : int(live[-1]) + 1]
-                    piece = trim_tails(off, law, tail)
-                    pieces.append(piece)
-                    if b_index not in fast:
-                        spread[0] += piece[0]
-                        spread[1] += piece[0] + piece[1].size - 1
-                window = None
-                if total_mgf is not None:
-                    c_lo, c_hi = chernoff_window(total_mgf, thetas, WINDOW_TAIL)
-                    window = (
-                        int(math.floor(c_lo)) + spread[0],
-                        int(math.ceil(c_hi)) + spread[1],
-                    )
-                off, law = convolve_pieces(pieces, window)
-                widest_total = max(widest_total, law.size)
-                end = min(off + law.size, plan.top + 1)
-                law = law[: end - off]
-                np.clip(law, 0.0, None, out=law)
-                law[law < _NOISE_FLOOR * law.max()] = 0.0
-                mixture[off:end] += (w_weight * g_weight) * law
+            widest_total = max(
+                widest_total,
+                add_global_laws(
+                    mixture,
+                    [
+                        (node_laws[i], fast[i].weights, fast[i].log_mgf)  # type: ignore[misc]
+                        for i in range(len(blocks))
+                        if i in fast
+                    ],
+                    [bl for i, bl in enumerate(block_laws) if i not in fast],
+                    w_weight * g_grid.weights,
+                    thetas if fast else np.zeros(0),
+                ),
+            )
         if progress is not None:
             progress(m + 1, w_nodes.size)
 

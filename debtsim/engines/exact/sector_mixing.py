@@ -2,32 +2,34 @@ r"""Sector laws on a shared sector-factor grid, mixed and convolved per global n
 
 Given its sector factor ``Y_s = y`` the obligors of a sector (outside link
 groups) are independent, so the sector's conditional loss law depends on
-``y`` alone.  :class:`SectorNodeLaws` builds one
+``y`` alone.  The engine builds one
 :class:`~debtsim.engines.exact.loss_grid.SeriesKernel` per sector per run
-(classes and grid losses do not depend on any factor) and computes the law
-at each node ``y_k`` of the sector's shared grid on its own narrow window
-(a Bernstein window, as the one-factor engine does given ``z``).  The laws
-are kept as compact rows ``(start, probabilities)``.
+(classes and grid losses do not depend on any factor);
+:class:`SectorNodeLaws` computes the law at each node ``y_k`` of the
+sector's shared grid on its own narrow window (the one-factor engine's
+Bernstein window, cut to the node's Chernoff window) and keeps them as
+compact rows ``(start, probabilities)``.
 
 For a global node ``g`` the sector's law is the mixture
 ``P_s(. | g) = sum_k W[g, k] P_s(. | y_k)`` with the Gaussian weights of
-``y`` given ``g`` (:func:`mix_rows`); weights below :data:`WEIGHT_CUT` are
-dropped and their mass is reported.  The mixed law's far tails (mass below
-``tail`` on each side) are trimmed; conditional on ``g`` the sectors are
-independent, so the total law is the convolution of the trimmed sector
-laws (:func:`convolve_pieces`), computed on a cyclic window of ``M``
-points: the summed ranges of the sector laws, cut to a Chernoff window
-when that is shorter.
+``y`` given ``g`` (:func:`mix_rows`, a compiled banded sum); weights below
+:data:`WEIGHT_CUT` are dropped and their mass is reported.  Conditional on
+``g`` the sectors are independent, so the total law is the convolution of
+the mixed sector laws (:func:`add_global_laws`): one real FFT per sector
+and one inverse on a cyclic window of ``M`` points, the summed ranges of
+the sector laws cut to the total's Chernoff window when that is shorter.
 
-Chernoff window.  For any ``theta``, ``P(S >= t) <= exp(-theta t) E e^{theta S}``
-(``theta > 0``; the mirror image for the lower tail).  Given ``g`` the
-sector losses are independent mixtures, so ``log E e^{theta S} = sum_s log
-sum_k W[g, k] M_{s,k}(theta)``, and ``M_{s,k}`` is bounded in closed form
-from the classes (:func:`log_mgf_bounds`: ``log(1 - p + p e^x) <= p (e^x -
-1)``, or ``x + (1 - p) (e^{-x} - 1)`` for ``p > 1/2``).  On a ladder of
-``theta`` values the smallest ``t`` with bound ``<= tail`` gives the
-window's ends (:func:`chernoff_window`), so the mass folded by the cyclic
-convolution is at most ``tail`` on each side.
+Chernoff window.  For any ``theta > 0``, ``P(S >= t) <= exp(-theta t) E
+e^{theta S}`` (the mirror image with ``theta < 0`` for the lower tail).
+Given ``g`` the sector losses are independent mixtures, so ``log E
+e^{theta S} = sum_s log sum_k W[g, k] M_{s,k}(theta)``, and ``M_{s,k}`` is
+bounded in closed form from the classes (:func:`log_mgf_bounds`: ``log(1 -
+p + p e^x) <= p (e^x - 1)``, or ``x + (1 - p) (e^{-x} - 1)`` for ``p >
+1/2``).  On a ladder of ``theta`` values (:func:`theta_ladder`) the
+smallest such ``t`` for a tail of :data:`~debtsim.engines.exact.loss_grid.WINDOW_TAIL`
+gives the window's ends (:func:`chernoff_window`), so the mass the cyclic
+convolution folds is at most that on each side, as in the one-factor
+engine.
 """
 
 from __future__ import annotations
@@ -40,18 +42,22 @@ from numpy.typing import NDArray
 from scipy import sparse
 
 from debtsim._typing import FloatArray, IntArray
-from debtsim.engines.exact.loss_grid import SeriesKernel, bernstein_halfwidth, place_window
+from debtsim.engines.exact.loss_grid import (
+    WINDOW_TAIL,
+    SeriesKernel,
+    bernstein_halfwidth,
+    place_window,
+)
 
 __all__ = [
     "WEIGHT_CUT",
     "SectorNodeLaws",
     "chernoff_window",
-    "convolve_pieces",
     "log_mgf_bounds",
     "mix_rows",
     "mixture_log_mgf",
     "theta_ladder",
-    "trim_tails",
+    "add_global_laws",
 ]
 
 #: Mixing weights (rows summing to 1) below this are dropped; their mass is reported.
@@ -82,8 +88,14 @@ class SectorNodeLaws:
         p: FloatArray,
         needed: NDArray[np.bool_],
         top: int,
+        log_mgf: FloatArray | None = None,
+        thetas: FloatArray | None = None,
     ) -> SectorNodeLaws:
         """Laws at the nodes ``needed`` (boolean per row of ``p``).
+
+        Each node's window is the Bernstein window of the one-factor
+        engine, cut to the node's Chernoff window when ``log_mgf`` (bounds
+        at ``thetas``, one row per node) is given.
 
         Parameters
         ----------
@@ -105,7 +117,12 @@ class SectorNodeLaws:
         for j in np.flatnonzero(needed).tolist():
             state = kernel.node(p[j])
             half = bernstein_halfwidth(state.var, state.bound)
-            window = place_window(state.mean, half, state.lowest, state.highest, top)
+            lo, hi = state.mean - half, state.mean + half
+            if log_mgf is not None and thetas is not None:
+                c_lo, c_hi = chernoff_window(log_mgf[j], thetas, WINDOW_TAIL)
+                lo, hi = max(lo, float(np.floor(c_lo))), min(hi, float(np.ceil(c_hi)))
+            mid, half = 0.5 * (lo + hi), 0.5 * (hi - lo)
+            window = place_window(mid, half, state.lowest, state.highest, top)
             widest = max(widest, window.width)
             law, trunc = kernel.law(state, window)
             truncation = max(truncation, trunc)
@@ -150,61 +167,6 @@ def mix_rows(laws: SectorNodeLaws, weights: FloatArray) -> tuple[int, FloatArray
 
     mix_banded(laws.start, laws.indptr, laws.data, kept, weights, lo, out)
     return lo, out
-
-
-def trim_tails(offset: int, law: FloatArray, tail: float) -> tuple[int, FloatArray]:
-    """Drop each end of ``law`` while the dropped mass stays at most ``tail``."""
-    cum = np.cumsum(law)
-    total = cum[-1]
-    a = int(np.searchsorted(cum, tail, side="right"))
-    b = int(np.searchsorted(cum, total - tail, side="left")) + 1
-    a = min(a, law.size - 1)
-    b = max(min(b, law.size), a + 1)
-    return offset + a, law[a:b]
-
-
-def convolve_pieces(
-    pieces: list[tuple[int, FloatArray]], window: tuple[int, int] | None = None
-) -> tuple[int, FloatArray]:
-    """Law of the sum of independent grid variables given as ``(offset, law)``.
-
-    Parameters
-    ----------
-    pieces : list of (offset, law)
-    window : (lo, hi), optional
-        Grid points outside which the sum has negligible mass; the law is
-        computed on ``lo .. hi`` (mass outside folds in modulo the FFT
-        length).  By default the whole range of the sum (nothing folds).
-
-    Returns
-    -------
-    offset : int
-    law : ndarray
-    """
-    lo_all = sum(off for off, _ in pieces)
-    hi_all = lo_all + sum(p.size for _, p in pieces) - len(pieces)
-    lo, hi = lo_all, hi_all
-    if window is not None:
-        lo, hi = max(window[0], lo_all), min(window[1], hi_all)
-    if len(pieces) == 1:
-        off, law = pieces[0]
-        return lo, law[lo - off : hi + 1 - off]
-    length = hi - lo + 1
-    width = sfft.next_fast_len(length, real=True)
-    spectrum: NDArray[np.complex128] | None = None
-    for _, p in pieces:
-        folded = (
-            p
-            if p.size <= width
-            else np.bincount(np.arange(p.size) % width, weights=p, minlength=width)
-        )
-        term = sfft.rfft(folded, width)
-        spectrum = term if spectrum is None else spectrum * term
-    assert spectrum is not None
-    law = sfft.irfft(spectrum, width)
-    # the sum lies at lo_all + t (mod width); read it from lo
-    law = np.roll(law, -((lo - lo_all) % width))[:length]
-    return lo, law
 
 
 def theta_ladder(largest_loss: int, top_loss: int, *, step: float = 2.0**0.5) -> FloatArray:
@@ -298,3 +260,83 @@ def mixture_log_mgf(weights: FloatArray, node_log_mgf: FloatArray) -> FloatArray
         total = np.sum(w * np.exp(terms - top[:, None, :]), axis=1)
         out[a : a + step] = top + np.log(total)
     return out
+
+
+def _fold(piece: FloatArray, width: int) -> FloatArray:
+    """``piece`` folded modulo ``width`` (unchanged when it already fits)."""
+    if piece.size <= width:
+        return piece
+    pad = (-piece.size) % width
+    return np.asarray(np.pad(piece, (0, pad)).reshape(-1, width).sum(axis=0), dtype=float)
+
+
+def add_global_laws(
+    mixture: FloatArray,
+    sectors: list[tuple[SectorNodeLaws, FloatArray, FloatArray]],
+    dense: list[FloatArray],
+    g_weights: FloatArray,
+    thetas: FloatArray,
+) -> int:
+    """Add ``sum_g g_weights[g] P(. | g)`` into ``mixture``; return the widest window.
+
+    Parameters
+    ----------
+    mixture : ndarray
+        Accumulator on the grid ``0 .. mixture.size - 1``.
+    sectors : list of (SectorNodeLaws, weights, log_mgf)
+        Blocks mixed from shared-grid node laws: the laws, the mixing
+        weights (global nodes x sector nodes) and the bounds of the mixed
+        law's log-MGF at ``thetas`` (global nodes x thetas).
+    dense : list of ndarray, shape (global nodes, block range)
+        Other blocks, their law at each global node from grid point 0.
+    g_weights : ndarray, shape (global nodes,)
+        Weights of the global nodes (times the mixing node's weight).
+    thetas : ndarray
+        The Chernoff ladder (negative values, then positive ones).
+    """
+    n_g = g_weights.size
+    lo_parts = np.zeros((n_g, len(sectors) + len(dense)), dtype=np.int64)
+    hi_parts = np.zeros_like(lo_parts)
+    for i, (laws, weights, _) in enumerate(sectors):
+        kept = weights > 0
+        lengths = np.diff(laws.indptr)
+        big = np.iinfo(np.int64).max
+        lo_parts[:, i] = np.where(kept, laws.start[None, :], big).min(axis=1)
+        hi_parts[:, i] = np.where(kept, (laws.start + lengths - 1)[None, :], -1).max(axis=1)
+    for i, law in enumerate(dense, start=len(sectors)):
+        live = law != 0
+        lo_parts[:, i] = np.argmax(live, axis=1)
+        hi_parts[:, i] = law.shape[1] - 1 - np.argmax(live[:, ::-1], axis=1)
+    lo = lo_parts.sum(axis=1)
+    hi = hi_parts.sum(axis=1)
+    if sectors:
+        total = np.sum([mgf for _, _, mgf in sectors], axis=0)
+        spread_lo = lo_parts[:, len(sectors) :].sum(axis=1)
+        spread_hi = hi_parts[:, len(sectors) :].sum(axis=1)
+        for g in range(n_g):
+            c_lo, c_hi = chernoff_window(total[g], thetas, WINDOW_TAIL)
+            lo[g] = max(lo[g], int(np.floor(c_lo)) + spread_lo[g])
+            hi[g] = min(hi[g], int(np.ceil(c_hi)) + spread_hi[g])
+    widest = 0
+    for g in range(n_g):
+        width = sfft.next_fast_len(int(hi[g] - lo[g]) + 1, real=True)
+        widest = max(widest, width)
+        spectrum: NDArray[np.complex128] | None = None
+        for laws, weights, _ in sectors:
+            _, piece = mix_rows(laws, weights[g])
+            term = sfft.rfft(_fold(piece, width), width)
+            spectrum = term if spectrum is None else spectrum * term
+        for i, dense_law in enumerate(dense, start=len(sectors)):
+            piece = dense_law[g, lo_parts[g, i] : hi_parts[g, i] + 1]
+            term = sfft.rfft(_fold(piece, width), width)
+            spectrum = term if spectrum is None else spectrum * term
+        assert spectrum is not None
+        law = sfft.irfft(spectrum, width)
+        base = int(lo_parts[g].sum())  # the sum lies at base + t (mod width)
+        law = np.roll(law, -((int(lo[g]) - base) % width))[: int(hi[g] - lo[g]) + 1]
+        end = min(int(lo[g]) + law.size, mixture.size)
+        law = law[: end - int(lo[g])]
+        np.clip(law, 0.0, None, out=law)
+        law[law < _NOISE_FLOOR * law.max()] = 0.0
+        mixture[int(lo[g]) : end] += g_weights[g] * law
+    return widest

@@ -114,6 +114,9 @@ _KERNEL_PANEL_SD = 3.0
 _KERNEL_CORE = 5.5
 #: Blocks with (lossy obligors x grid points) up to this use the direct recursion.
 _DIRECT_LIMIT = 1 << 16
+#: Sector blocks without link groups on a shared grid take the mixing path of
+#: :mod:`debtsim.engines.exact.sector_mixing` (tests switch it off to compare).
+_FAST_SECTORS = True
 #: Below this ``sqrt(1 - a^2)`` a sector is read as identical to the global factor.
 _SIGMA_ZERO = 1e-12
 
@@ -582,15 +585,14 @@ def sector_law(
     fast: dict[int, _FastSector] = {}
     if not atoms_mode:
         for b_index, (b, rule) in enumerate(zip(blocks, rules, strict=True)):
-            if rule.kind == "shared" and not b.groups:
+            if rule.kind == "shared" and not b.groups and _FAST_SECTORS:
                 fast[b_index] = _FastSector.build(b, rule, threshold, r, plan.k)
                 cut_mass = max(cut_mass, fast[b_index].cut_mass)
     if fast:
-        positive = theta_ladder(
-            max(int(f.k.max(initial=1)) for f in fast.values()), int(plan.top)
-        )
+        positive = theta_ladder(max(int(f.k.max(initial=1)) for f in fast.values()), int(plan.top))
         thetas = np.concatenate([-positive[::-1], positive])
     widest_total = 0
+    pd_error = 0.0
     for m, (w_value, w_weight) in enumerate(zip(w_nodes, w_weights, strict=True)):
         scale = 1.0 if nu is None else math.sqrt(float(w_value) / nu)
         block_laws: list[FloatArray] = []
@@ -601,6 +603,18 @@ def sector_law(
                 fs = fast[b_index]
                 cls_p = sector_conditional_pd(fs.threshold, fs.r, rule.y[:, 0], scale)
                 default_probability[b.members] += w_weight * (inner_w @ cls_p)[fs.of_member]
+                # the sector rule on each class's PD given g against the closed form,
+                # averaged over g (what the mixed law inherits)
+                a_s = float(loadings[b.sectors[0]])
+                closed = ndtr(
+                    (
+                        fs.threshold[None, :] * scale
+                        - np.sqrt(fs.r * a_s * a_s)[None, :] * g_grid.nodes[:, None]
+                    )
+                    / np.sqrt(1.0 - fs.r * a_s * a_s)[None, :]
+                )
+                gap = np.max(np.abs(fs.weights @ cls_p - closed), axis=1)
+                pd_error = max(pd_error, float(g_grid.weights @ gap))
                 node_mgf = np.zeros((cls_p.shape[0], thetas.size))
                 node_mgf[fs.needed] = log_mgf_bounds(cls_p[fs.needed], fs.k, fs.count, thetas)
                 node_laws[b_index] = SectorNodeLaws.compute(
@@ -705,6 +719,7 @@ def sector_law(
         else 0.0,
         "sector_weight_cut_mass": float(cut_mass),
         "widest_global_window": int(widest_total),
+        "sector_rule_pd_error": float(pd_error),
     }
     return SectorLaw(losses, probs_out, default_probability, settings, diagnostics)
 

@@ -12,11 +12,13 @@ runs that mix sector laws.
 
 from __future__ import annotations
 
+import math
+
 import numba
 
 from debtsim._typing import FloatArray, IntArray
 
-__all__ = ["mix_banded"]
+__all__ = ["log_mix", "mix_banded"]
 
 
 @numba.njit(cache=True, nogil=True)
@@ -50,3 +52,34 @@ def mix_banded(
         a = indptr[k]
         for t in range(indptr[k + 1] - a):
             out[s + t] += w * data[a + t]
+
+
+@numba.njit(cache=True, nogil=True)
+def log_mix(weights: FloatArray, values: FloatArray, out: FloatArray) -> None:
+    """``out[g, t] = log sum_k weights[g, k] exp(values[k, t])`` over ``weights[g, k] > 0``.
+
+    Each sum is shifted by its largest term, so nothing overflows and the
+    leading term never underflows.
+
+    Parameters
+    ----------
+    weights : ndarray, shape (m, n)
+        Non-negative weights; every row has a positive entry.
+    values : ndarray, shape (n, q)
+    out : ndarray, shape (m, q)
+        Filled in place.
+    """
+    m, n = weights.shape
+    q = values.shape[1]
+    for g in range(m):
+        for t in range(q):
+            top = -math.inf
+            for k in range(n):
+                if weights[g, k] > 0.0 and values[k, t] > top:
+                    top = values[k, t]
+            total = 0.0
+            for k in range(n):
+                w = weights[g, k]
+                if w > 0.0:
+                    total += w * math.exp(values[k, t] - top)
+            out[g, t] = top + math.log(total)

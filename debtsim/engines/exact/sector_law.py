@@ -112,6 +112,8 @@ _NOISE_FLOOR = 1e-15
 _KERNEL_PANEL_SD = 3.0
 #: Inside ``|y| <= _KERNEL_CORE`` the shared grid keeps the full kernel density.
 _KERNEL_CORE = 5.5
+#: Floor of the shared sector grid, nodes per unit of ``y`` (times the steepest loading).
+_SECTOR_BASE = 4.0
 #: Blocks with (lossy obligors x grid points) up to this use the direct recursion.
 _DIRECT_LIMIT = 1 << 16
 #: Sector blocks without link groups on a shared grid take the mixing path of
@@ -282,7 +284,7 @@ def default_sector_grid(
     sigma = math.sqrt(max(1.0 - loading * loading, 0.0))
     floor = order / (_KERNEL_PANEL_SD * max(sigma, 1e-3))
     loading_max = float(np.sqrt(r / (1.0 - r)).max()) if r.size else 0.0
-    base = 4.0 * max(1.0, loading_max)
+    base = _SECTOR_BASE * max(1.0, loading_max)
 
     def kernel_floor(y: FloatArray) -> FloatArray:
         return np.where(np.abs(y) <= _KERNEL_CORE, floor, floor / 3.0)

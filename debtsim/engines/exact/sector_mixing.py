@@ -53,6 +53,7 @@ __all__ = [
     "WEIGHT_CUT",
     "SectorNodeLaws",
     "chernoff_window",
+    "chernoff_windows",
     "log_mgf_bounds",
     "mix_rows",
     "mixture_log_mgf",
@@ -114,13 +115,16 @@ class SectorNodeLaws:
         rows: list[FloatArray] = []
         truncation = 0.0
         widest = 0
+        c_lo = np.full(n, -np.inf)
+        c_hi = np.full(n, np.inf)
+        if log_mgf is not None and thetas is not None:
+            c_lo[needed], c_hi[needed] = chernoff_windows(log_mgf[needed], thetas, WINDOW_TAIL)
+            c_lo, c_hi = np.floor(c_lo), np.ceil(c_hi)
         for j in np.flatnonzero(needed).tolist():
             state = kernel.node(p[j])
             half = bernstein_halfwidth(state.var, state.bound)
-            lo, hi = state.mean - half, state.mean + half
-            if log_mgf is not None and thetas is not None:
-                c_lo, c_hi = chernoff_window(log_mgf[j], thetas, WINDOW_TAIL)
-                lo, hi = max(lo, float(np.floor(c_lo))), min(hi, float(np.ceil(c_hi)))
+            lo = max(state.mean - half, float(c_lo[j]))
+            hi = min(state.mean + half, float(c_hi[j]))
             mid, half = 0.5 * (lo + hi), 0.5 * (hi - lo)
             window = place_window(mid, half, state.lowest, state.highest, top)
             widest = max(widest, window.width)
@@ -231,9 +235,17 @@ def chernoff_window(log_mgf: FloatArray, theta: FloatArray, tail: float) -> tupl
     theta : ndarray, shape (2 m,)
     tail : float
     """
-    t = (np.log(1.0 / tail) + log_mgf) / theta
+    lo, hi = chernoff_windows(log_mgf[None, :], theta, tail)
+    return float(lo[0]), float(hi[0])
+
+
+def chernoff_windows(
+    log_mgf: FloatArray, theta: FloatArray, tail: float
+) -> tuple[FloatArray, FloatArray]:
+    """:func:`chernoff_window` for many rows of bounds at once (rows x thetas)."""
+    t = (np.log(1.0 / tail) + log_mgf) / theta[None, :]
     neg = theta < 0
-    return float(np.max(t[neg])), float(np.min(t[~neg]))
+    return t[:, neg].max(axis=1), t[:, ~neg].min(axis=1)
 
 
 def mixture_log_mgf(weights: FloatArray, node_log_mgf: FloatArray) -> FloatArray:
@@ -251,14 +263,13 @@ def mixture_log_mgf(weights: FloatArray, node_log_mgf: FloatArray) -> FloatArray
         Summed with each entry shifted by its largest term (no overflow,
         no underflow of the leading term).
     """
+    from debtsim.engines.exact.mixing_kernels import log_mix
+
+    used = np.flatnonzero((weights > 0).any(axis=0))
     out = np.empty((weights.shape[0], node_log_mgf.shape[1]))
-    step = max(1, (1 << 21) // max(node_log_mgf.size, 1))
-    for a in range(0, weights.shape[0], step):
-        w = weights[a : a + step, :, None]
-        terms = np.where(w > 0, node_log_mgf[None, :, :], -np.inf)
-        top = terms.max(axis=1)
-        total = np.sum(w * np.exp(terms - top[:, None, :]), axis=1)
-        out[a : a + step] = top + np.log(total)
+    log_mix(
+        np.ascontiguousarray(weights[:, used]), np.ascontiguousarray(node_log_mgf[used]), out
+    )
     return out
 
 
@@ -313,10 +324,9 @@ def add_global_laws(
         total = np.sum([mgf for _, _, mgf in sectors], axis=0)
         spread_lo = lo_parts[:, len(sectors) :].sum(axis=1)
         spread_hi = hi_parts[:, len(sectors) :].sum(axis=1)
-        for g in range(n_g):
-            c_lo, c_hi = chernoff_window(total[g], thetas, WINDOW_TAIL)
-            lo[g] = max(lo[g], int(np.floor(c_lo)) + spread_lo[g])
-            hi[g] = min(hi[g], int(np.ceil(c_hi)) + spread_hi[g])
+        c_lo, c_hi = chernoff_windows(total, thetas, WINDOW_TAIL)
+        lo = np.maximum(lo, np.floor(c_lo).astype(np.int64) + spread_lo)
+        hi = np.minimum(hi, np.ceil(c_hi).astype(np.int64) + spread_hi)
     widest = 0
     for g in range(n_g):
         width = sfft.next_fast_len(int(hi[g] - lo[g]) + 1, real=True)

@@ -36,9 +36,26 @@ With ``sector_grid`` given, or for blocks of several sectors, the rule is the
 of ``sector_grid`` (Gauss–Hermite by default), per outer node; on the same
 nodes it is exactly the brute-force tensor sum over (global, sector) nodes.
 
+Computation (loss grid).  A shared-grid sector without link groups (the
+common case of a big book) takes the path of
+:mod:`debtsim.engines.exact.sector_mixing`: its loss classes and one
+:class:`~debtsim.engines.exact.loss_grid.SeriesKernel` are built once per
+run, its law at each ``y_k`` is computed once (per mixing node ``w``) on
+the node's own narrow window, and for each global node the sector laws are
+mixed with that node's weights and convolved on one Chernoff window.  The
+other blocks (link groups, loadings 1, the tensor rule) keep their laws per
+global node and join the same per-node convolution.  Both give the same
+law to rounding (tests compare them); ``diagnostics`` report the dropped
+mixing-weight mass (``sector_weight_cut_mass``) and, as a check of the
+sector rule, its error on every class's default probability given the
+global factor against the closed form ``Phi((c s - sqrt(R) a g) / sqrt(1 -
+R a^2))``, averaged over the global nodes (``sector_rule_pd_error``).
+
 Student-t.  The mixing variable ``W ~ chi^2_nu`` is one more integral,
 outermost: a composite Gauss–Legendre rule in ``log W`` (or the nodes given).
 Given ``W = w`` the threshold ``t_nu^-1(PD)`` is scaled by ``sqrt(w / nu)``.
+Everything but the sector laws at the ``y_k`` (and the per-node
+convolutions) is shared by all ``w``: classes, kernels, grids and weights.
 
 References
 ----------

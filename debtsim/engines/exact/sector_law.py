@@ -36,9 +36,26 @@ With ``sector_grid`` given, or for blocks of several sectors, the rule is the
 of ``sector_grid`` (Gauss–Hermite by default), per outer node; on the same
 nodes it is exactly the brute-force tensor sum over (global, sector) nodes.
 
+Computation (loss grid).  A shared-grid sector without link groups (the
+common case of a big book) takes the path of
+:mod:`debtsim.engines.exact.sector_mixing`: its loss classes and one
+:class:`~debtsim.engines.exact.loss_grid.SeriesKernel` are built once per
+run, its law at each ``y_k`` is computed once (per mixing node ``w``) on
+the node's own narrow window, and for each global node the sector laws are
+mixed with that node's weights and convolved on one Chernoff window.  The
+other blocks (link groups, loadings 1, the tensor rule) keep their laws per
+global node and join the same per-node convolution.  Both give the same
+law to rounding (tests compare them); ``diagnostics`` report the dropped
+mixing-weight mass (``sector_weight_cut_mass``) and, as a check of the
+sector rule, its error on every class's default probability given the
+global factor against the closed form ``Phi((c s - sqrt(R) a g) / sqrt(1 -
+R a^2))``, averaged over the global nodes (``sector_rule_pd_error``).
+
 Student-t.  The mixing variable ``W ~ chi^2_nu`` is one more integral,
 outermost: a composite Gauss–Legendre rule in ``log W`` (or the nodes given).
 Given ``W = w`` the threshold ``t_nu^-1(PD)`` is scaled by ``sqrt(w / nu)``.
+Everything but the sector laws at the ``y_k`` (and the per-node
+convolutions) is shared by all ``w``: classes, kernels, grids and weights.
 
 References
 ----------
@@ -57,6 +74,7 @@ from typing import Any
 
 import numpy as np
 from numpy.polynomial.legendre import leggauss
+from numpy.typing import NDArray
 from scipy import sparse
 from scipy.special import ndtr
 from scipy.stats import chi2
@@ -67,10 +85,19 @@ from debtsim.engines.exact.loss_grid import (
     SERIES_TOLERANCE,
     WINDOW_TAIL,
     AtomConvolution,
+    SeriesKernel,
     bernstein_halfwidth,
     grid_law,
     place_window,
     product_law,
+)
+from debtsim.engines.exact.sector_mixing import (
+    WEIGHT_CUT,
+    SectorNodeLaws,
+    add_global_laws,
+    log_mgf_bounds,
+    mixture_log_mgf,
+    theta_ladder,
 )
 from debtsim.model.dependence import FactorStructure, default_threshold, sector_conditional_pd
 from debtsim.model.factor_grid import FactorGrid, adaptive_grid, gauss_hermite
@@ -102,8 +129,13 @@ _NOISE_FLOOR = 1e-15
 _KERNEL_PANEL_SD = 3.0
 #: Inside ``|y| <= _KERNEL_CORE`` the shared grid keeps the full kernel density.
 _KERNEL_CORE = 5.5
+#: Floor of the shared sector grid, nodes per unit of ``y`` (times the steepest loading).
+_SECTOR_BASE = 4.0
 #: Blocks with (lossy obligors x grid points) up to this use the direct recursion.
 _DIRECT_LIMIT = 1 << 16
+#: Sector blocks without link groups on a shared grid take the mixing path of
+#: :mod:`debtsim.engines.exact.sector_mixing` (tests switch it off to compare).
+_FAST_SECTORS = True
 #: Below this ``sqrt(1 - a^2)`` a sector is read as identical to the global factor.
 _SIGMA_ZERO = 1e-12
 
@@ -269,7 +301,7 @@ def default_sector_grid(
     sigma = math.sqrt(max(1.0 - loading * loading, 0.0))
     floor = order / (_KERNEL_PANEL_SD * max(sigma, 1e-3))
     loading_max = float(np.sqrt(r / (1.0 - r)).max()) if r.size else 0.0
-    base = 4.0 * max(1.0, loading_max)
+    base = _SECTOR_BASE * max(1.0, loading_max)
 
     def kernel_floor(y: FloatArray) -> FloatArray:
         return np.where(np.abs(y) <= _KERNEL_CORE, floor, floor / 3.0)
@@ -567,13 +599,53 @@ def sector_law(
         mixture = np.zeros(plan.top + 1)
     truncation = 0.0
     widest = 0
+    cut_mass = 0.0
+    # blocks of one sector on a shared grid without link groups: one kernel per run
+    fast: dict[int, _FastSector] = {}
+    if not atoms_mode:
+        for b_index, (b, rule) in enumerate(zip(blocks, rules, strict=True)):
+            if rule.kind == "shared" and not b.groups and _FAST_SECTORS:
+                fast[b_index] = _FastSector.build(b, rule, threshold, r, plan.k)
+                cut_mass = max(cut_mass, fast[b_index].cut_mass)
+    if fast:
+        positive = theta_ladder(max(int(f.k.max(initial=1)) for f in fast.values()), int(plan.top))
+        thetas = np.concatenate([-positive[::-1], positive])
+    widest_total = 0
+    pd_error = 0.0
     for m, (w_value, w_weight) in enumerate(zip(w_nodes, w_weights, strict=True)):
         scale = 1.0 if nu is None else math.sqrt(float(w_value) / nu)
         block_laws: list[FloatArray] = []
+        node_laws: dict[int, SectorNodeLaws] = {}
         for b_index, (b, rule) in enumerate(zip(blocks, rules, strict=True)):
+            inner_w = np.asarray(g_grid.weights @ rule.weights).ravel()  # inner node weights
+            if b_index in fast:
+                fs = fast[b_index]
+                cls_p = sector_conditional_pd(fs.threshold, fs.r, rule.y[:, 0], scale)
+                default_probability[b.members] += w_weight * (inner_w @ cls_p)[fs.of_member]
+                # the sector rule on each class's PD given g against the closed form,
+                # averaged over g (what the mixed law inherits)
+                a_s = float(loadings[b.sectors[0]])
+                closed = ndtr(
+                    (
+                        fs.threshold[None, :] * scale
+                        - np.sqrt(fs.r * a_s * a_s)[None, :] * g_grid.nodes[:, None]
+                    )
+                    / np.sqrt(1.0 - fs.r * a_s * a_s)[None, :]
+                )
+                gap = np.max(np.abs(fs.weights @ cls_p - closed), axis=1)
+                pd_error = max(pd_error, float(g_grid.weights @ gap))
+                node_mgf = np.zeros((cls_p.shape[0], thetas.size))
+                node_mgf[fs.needed] = log_mgf_bounds(cls_p[fs.needed], fs.k, fs.count, thetas)
+                node_laws[b_index] = SectorNodeLaws.compute(
+                    fs.kernel, cls_p, fs.needed, fs.top, node_mgf, thetas
+                )
+                fs.log_mgf = mixture_log_mgf(fs.weights, node_mgf)
+                truncation = max(truncation, node_laws[b_index].truncation)
+                widest = max(widest, node_laws[b_index].widest)
+                block_laws.append(np.zeros((0, 0)))
+                continue
             pos_of = {int(sct): j for j, sct in enumerate(b.sectors)}
             cols = np.array([pos_of[int(sector_of[i])] for i in b.members.tolist()], dtype=np.int64)
-            inner_w = np.asarray(g_grid.weights @ rule.weights).ravel()  # inner node weights
             laws, marg, stats = _block_inner_laws(
                 b,
                 rule,
@@ -593,16 +665,22 @@ def sector_law(
         if atoms_mode:
             assert total_support is not None
             probs = total_support.apply(block_laws)
+            mixture += w_weight * (g_grid.weights @ probs)
         else:
-            offset, probs = product_law([(0, bl) for bl in block_laws])
-            assert offset == 0
-            if probs.shape[1] < plan.top + 1:
-                probs = np.pad(probs, ((0, 0), (0, plan.top + 1 - probs.shape[1])))
-            probs = probs[:, : plan.top + 1]
-            np.clip(probs, 0.0, None, out=probs)
-            peak = probs.max(axis=1, keepdims=True)
-            probs[probs < _NOISE_FLOOR * peak] = 0.0
-        mixture += w_weight * (g_grid.weights @ probs)
+            widest_total = max(
+                widest_total,
+                add_global_laws(
+                    mixture,
+                    [
+                        (node_laws[i], fast[i].weights, fast[i].log_mgf)  # type: ignore[misc]
+                        for i in range(len(blocks))
+                        if i in fast
+                    ],
+                    [bl for i, bl in enumerate(block_laws) if i not in fast],
+                    w_weight * g_grid.weights,
+                    thetas if fast else np.zeros(0),
+                ),
+            )
         if progress is not None:
             progress(m + 1, w_nodes.size)
 
@@ -658,6 +736,9 @@ def sector_law(
         "factor_truncation_mass": float(2.0 * ndtr(-FACTOR_LIMIT))
         if g_grid.method.startswith("adaptive")
         else 0.0,
+        "sector_weight_cut_mass": float(cut_mass),
+        "widest_global_window": int(widest_total),
+        "sector_rule_pd_error": float(pd_error),
     }
     return SectorLaw(losses, probs_out, default_probability, settings, diagnostics)
 
@@ -672,6 +753,47 @@ def _method_text(structure: FactorStructure, kinds: list[str]) -> str:
     if structure.student_t:
         text += "; Student-t mixing variable integrated outermost"
     return text
+
+
+@dataclass
+class _FastSector:
+    """A one-sector block without link groups on its shared grid, prepared once per run."""
+
+    kernel: SeriesKernel
+    threshold: FloatArray  # per class
+    r: FloatArray  # per class
+    k: IntArray  # per class
+    count: FloatArray  # per class
+    of_member: IntArray  # class of each block member
+    weights: FloatArray  # (global nodes, sector nodes), below WEIGHT_CUT dropped
+    needed: NDArray[np.bool_]  # sector nodes some global node uses
+    top: int
+    cut_mass: float  # largest dropped weight of one global node
+    log_mgf: FloatArray | None = None  # (global nodes, thetas) bounds, per mixing node
+
+    @classmethod
+    def build(
+        cls, block: _Block, rule: _InnerRule, threshold: FloatArray, r: FloatArray, k: IntArray
+    ) -> _FastSector:
+        members = block.members
+        keys = np.stack([threshold[members], r[members], k[members].astype(float)], axis=1)
+        uniq, inverse, counts = np.unique(keys, axis=0, return_inverse=True, return_counts=True)
+        kernel = SeriesKernel(uniq[:, 2].astype(np.int64), counts.astype(float))
+        dense = np.asarray(rule.weights, dtype=float)
+        kept = np.where(dense >= WEIGHT_CUT, dense, 0.0)
+        cut = float(np.max(dense.sum(axis=1) - kept.sum(axis=1)))
+        return cls(
+            kernel,
+            uniq[:, 0],
+            uniq[:, 1],
+            uniq[:, 2].astype(np.int64),
+            counts.astype(float),
+            inverse.ravel().astype(np.int64),
+            kept,
+            np.asarray((kept > 0).any(axis=0)),
+            int(k[members].sum()),
+            max(cut, 0.0),
+        )
 
 
 def _block_atoms(

@@ -230,12 +230,12 @@ class ExactEngine(Engine):
         # group obligors by (PD, R) class (binned when there are many) to keep this cheap
         if lossy.any():
             keys = np.stack([pd[lossy], r[lossy]], axis=1)
-            uniq, inverse = np.unique(keys, axis=0, return_inverse=True)
+            uniq, inverse, _ = _unique_rows(keys)
             if uniq.shape[0] > 512:
                 pd_bin = np.round(np.log(pd[lossy]) * 8.0) / 8.0
                 r_bin = np.round(r[lossy] * 64.0) / 64.0
                 keys = np.stack([pd_bin, r_bin], axis=1)
-                uniq, inverse = np.unique(keys, axis=0, return_inverse=True)
+                uniq, inverse, _ = _unique_rows(keys)
                 uniq = np.stack([np.exp(uniq[:, 0]), uniq[:, 1]], axis=1)
             inverse = inverse.ravel()
             sum_l = np.bincount(inverse, weights=loss[lossy])
@@ -623,14 +623,10 @@ def _run_grid(
     top = plan.top
     # (PD, R) classes share a conditional PD; loss classes add the grid loss
     pr_keys = np.stack([model.pd, model.asset_correlation], axis=1)
-    pr_unique, pr_of = np.unique(pr_keys, axis=0, return_inverse=True)
-    pr_of = pr_of.ravel()
+    pr_unique, pr_of, _ = _unique_rows(pr_keys)
     lossy_single = single[k_all[single] > 0]
     loss_keys = np.stack([pr_of[lossy_single], k_all[lossy_single]], axis=1)
-    cls, cls_of, cls_count = np.unique(
-        loss_keys, axis=0, return_inverse=True, return_counts=True
-    )
-    cls_of = cls_of.ravel()
+    cls, cls_of, cls_count = _unique_rows(loss_keys)
     cls_pr = cls[:, 0]
     cls_k = cls[:, 1].astype(np.int64)
     cls_count = cls_count.astype(float)
@@ -718,12 +714,32 @@ def _run_grid(
     return losses, probs, default_probability, diagnostics, unit
 
 
+def _unique_rows(rows: NDArray[Any]) -> tuple[NDArray[Any], IntArray, IntArray]:
+    """``np.unique(rows, axis=0, return_inverse=True, return_counts=True)`` for two columns.
+
+    The same rows in the same (lexicographic) order, by one ``lexsort`` of
+    the columns instead of a sort of structured records (ten times faster for
+    a million rows).
+    """
+    order = np.lexsort((rows[:, 1], rows[:, 0]))
+    ordered = rows[order]
+    start = np.empty(order.size, dtype=bool)
+    start[:1] = True
+    np.any(ordered[1:] != ordered[:-1], axis=1, out=start[1:])
+    first = np.flatnonzero(start)
+    inverse = np.empty(order.size, dtype=np.int64)
+    inverse[order] = np.cumsum(start) - 1
+    counts = np.diff(np.append(first, order.size)).astype(np.int64)
+    return ordered[first], inverse, counts
+
+
 class _ConditionalPD:
     """``conditional_default_probability`` with its per-class constants computed once.
 
     A million-obligor book evaluates the conditional PDs a few nodes at a
     time; recomputing ``Phi^-1(PD)`` on every call would cost as much as the
-    call itself.  Same formula, same special cases (PD 1 gives 1).
+    call itself.  Same formula, same special cases (PD 1 gives 1), computed
+    in place (one array of the batch's size, no temporaries).
     """
 
     def __init__(self, pd: FloatArray, correlation: FloatArray) -> None:
@@ -735,11 +751,13 @@ class _ConditionalPD:
         self._never = np.flatnonzero(pd <= 0.0)
 
     def __call__(self, z: FloatArray) -> FloatArray:
-        x = (self._threshold[None, :] - self._sr[None, :] * z[:, None]) / self._s1r[None, :]
-        p = ndtr(x)
+        p: FloatArray = np.multiply(self._sr[None, :], -np.asarray(z, dtype=float)[:, None])
+        p += self._threshold[None, :]
+        p /= self._s1r[None, :]
+        ndtr(p, out=p)
         p[:, self._sure] = 1.0
         p[:, self._never] = 0.0
-        return np.asarray(p, dtype=np.float64)
+        return p
 
 
 @dataclass

@@ -37,10 +37,10 @@ from __future__ import annotations
 
 import heapq
 from dataclasses import dataclass
+from types import ModuleType
 
 import numpy as np
 import scipy.fft as sfft
-from numpy.typing import NDArray
 from scipy.signal import fftconvolve
 
 from debtsim._typing import FloatArray, IntArray
@@ -54,6 +54,7 @@ __all__ = [
     "WINDOW_TAIL",
     "Window",
     "bernstein_halfwidth",
+    "compiled",
     "grid_law",
     "product_law",
     "place_window",
@@ -64,10 +65,6 @@ __all__ = [
 SERIES_TOLERANCE = 1e-14
 #: Probability allowed outside a node's window on each side (Bernstein bound).
 WINDOW_TAIL = 1e-16
-#: Series work (classes x terms) below which the last rounds run as one matrix.
-_MATRIX_FINISH = 1 << 18
-#: Below this many active classes the remaining series terms are built as matrices.
-_RAGGED_FINISH = 512
 #: Classes needing more series terms than this are multiplied in exactly instead.
 HARD_ORDER = 8192
 
@@ -185,12 +182,27 @@ class NodeState:
     """
 
     p: FloatArray
-    one_minus: FloatArray
     mean: float
     var: float
     bound: float
     lowest: int
     highest: int
+
+    @property
+    def one_minus(self) -> FloatArray:
+        """Survival probability ``1 - p`` of each class."""
+        return 1.0 - self.p
+
+
+def compiled() -> ModuleType:
+    """Return the compiled per-node kernels (:mod:`debtsim.engines.exact.node_kernels`).
+
+    Imported on first use: numba's import and the kernels' compilation (or
+    loading from the on-disk cache) are paid only by runs that need them.
+    """
+    from debtsim.engines.exact import node_kernels
+
+    return node_kernels
 
 
 class SeriesKernel:
@@ -198,19 +210,17 @@ class SeriesKernel:
 
     Class ``c`` holds ``count[c]`` obligors, each losing ``k[c]`` grid units
     on default with the node's probability ``p[c]``.  At a node the log-PGF
-    is summed as in the module notes, but grouped by distinct grid loss: with
-    ``q = min(p, 1 - p)`` and ``theta = q / (1 - q)``, round ``r`` adds the
-    power sums ``sum count * theta^r`` of all classes sharing a grid loss
-    (and a side of ``p = 1/2``) in one ``bincount``, then places the few
-    distinct sums at ``+-r k`` on the window.  The active set shrinks as
-    classes reach the number of terms they need; the last few thousand
-    classes are finished as matrices (classes x remaining terms).  A class
-    needing more than ``hard_order`` terms (``p`` within about 0.1% of 1/2)
-    is multiplied in exactly: ``(1 - p + p w^k)^count`` on the window's
-    frequencies ``w``.
+    is summed as in the module notes by a compiled loop over the classes
+    (:func:`debtsim.engines.exact.node_kernels.series_terms`): with ``q =
+    min(p, 1 - p)`` and ``theta = q / (1 - q)``, each class adds its terms
+    ``(-1)^(r+1) count theta^r / r`` straight into the window's coefficient
+    array at ``+-r k`` modulo the width.  A class needing more than
+    ``hard_order`` terms (``p`` within about 0.1% of 1/2) is multiplied in
+    exactly: ``(1 - p + p w^k)^count`` on the window's frequencies ``w``.
 
-    Truncation: class ``c`` stops after ``R_c`` terms with
-    ``theta^(R+1) / ((R+1) (1 - theta)) <= tolerance / sum(count)``, so the
+    Truncation: class ``c`` stops after the first ``R_c >= 1`` terms with
+    ``theta^(R+1) / ((R+1) (1 - theta)) <= tolerance / sum(count)``, a bound
+    on the dropped tail ``sum_{r > R} theta^r / r`` of each obligor, so the
     dropped part of ``log G`` is at most ``tolerance`` at every frequency.
 
     Parameters
@@ -238,22 +248,16 @@ class SeriesKernel:
         count = np.ones(k.size) if count is None else np.asarray(count, dtype=float)
         keep = k > 0
         self._keep: IntArray | None = None if keep.all() else np.flatnonzero(keep)
-        self.k = k[keep]
-        self.count = count[keep]
+        self.k = np.ascontiguousarray(k[keep])
+        self.count = np.ascontiguousarray(count[keep])
         self.kc = self.k * self.count
         self.k2c = self.k.astype(float) ** 2 * self.count
         self.total = int(np.sum(self.k * np.round(self.count).astype(np.int64)))
         self.kmax = int(self.k.max()) if self.k.size else 0
-        self._distinct, inverse = np.unique(self.k, return_inverse=True)
-        self._key = inverse.ravel().astype(np.int64)
-        self._nkeys = int(self._distinct.size)
-        # signed grid loss of each key: + for p <= 1/2, - for flipped classes
-        self._signed = np.concatenate([self._distinct, -self._distinct])
-        self._ones = bool(np.all(self.count == 1.0))
-        total_count = float(self.count.sum())
         self.tolerance = float(tolerance)
-        self._total_count = max(total_count, 1.0)
+        self._total_count = max(float(self.count.sum()), 1.0)
         self.hard_order = int(hard_order)
+        self._reciprocal = 1.0 / np.maximum(np.arange(self.hard_order + 2, dtype=np.float64), 1.0)
 
     @property
     def size(self) -> int:
@@ -262,21 +266,18 @@ class SeriesKernel:
 
     def node(self, p: FloatArray) -> NodeState:
         """Moments of the loss at one node, given the classes' default probabilities."""
-        p = np.asarray(p, dtype=float)
+        p = np.asarray(p, dtype=np.float64)
         if self._keep is not None:
             p = p[self._keep]
-        one_minus = 1.0 - p
-        mean = float(np.sum(p * self.kc))  # plain sums: no BLAS threads per node
-        var = float(np.sum(p * one_minus * self.k2c))
+        p = np.ascontiguousarray(p)
         if p.size == 0:
-            return NodeState(p, one_minus, 0.0, 0.0, 0.0, 0, 0)
-        if p.min() > 0.0 and p.max() < 1.0:
-            return NodeState(p, one_minus, mean, var, float(self.kmax), 0, self.total)
-        moving = (p > 0.0) & (p < 1.0)
-        bound = float(self.k[moving].max()) if moving.any() else 0.0
-        lowest = int(np.sum(self.kc[p >= 1.0]))
-        highest = int(np.sum(self.kc[p > 0.0]))
-        return NodeState(p, one_minus, mean, var, bound, lowest, highest)
+            return NodeState(p, 0.0, 0.0, 0.0, 0, 0)
+        mean, var, bound, lowest, highest, interior = compiled().node_moments(
+            p, self.k, self.kc, self.k2c
+        )
+        if interior:
+            return NodeState(p, mean, var, float(self.kmax), 0, self.total)
+        return NodeState(p, mean, var, bound, int(lowest), int(highest))
 
     def law(
         self,
@@ -293,41 +294,36 @@ class SeriesKernel:
         """
         tol = self.tolerance if tolerance is None else float(tolerance)
         width = window.width
-        p, one_minus = state.p, state.one_minus
-        log_spectrum = np.zeros(width // 2 + 1, dtype=complex)
-        hard_spectrum: NDArray[np.complex128] | None = None
+        p = state.p
         coefficients = np.zeros(width)
         const = 0.0
         shift = 0
         truncation = 0.0
-        if p.size:
-            flip = p > 0.5
-            q = np.where(flip, one_minus, p)
-            with np.errstate(divide="ignore", invalid="ignore"):
-                theta = q / (1.0 - q)
-                log_theta = np.log(theta)
-                log_each = np.log(tol / self._total_count)
-                need = np.ceil((log_each + np.log1p(-theta)) / log_theta) - 1.0
-            need = np.where(theta > 0.0, np.maximum(need, 1.0), 0.0)
-            need[theta >= 1.0] = np.inf  # p = 1/2 exactly: the series does not converge
-            hard = need > self.hard_order
-            n_hard = int(np.count_nonzero(hard))
-            count = self.count
-            series = ~hard
-            # log(1 - q) over series classes; for flipped ones that is log p
-            logs = np.log1p(-q)
-            const = float(np.sum(logs * count if n_hard == 0 else logs[series] * count[series]))
-            shift = int(round(float(np.sum(self.kc[flip & series]))))
-            if n_hard:
-                hard_spectrum = self._hard_spectrum(p[hard], self.k[hard], count[hard], width)
-                need = np.where(series, need, 0.0)
-            self._add_series(coefficients, theta, need, flip, width)
+        n_hard = 0
+        hard = np.empty(0, dtype=np.int64)
+        kernels = compiled() if p.size else None
+        if kernels is not None:
+            hard = np.empty(p.size, dtype=np.int64)
+            const, shifted, n_hard = kernels.series_terms(
+                p,
+                self.k,
+                self.count,
+                tol / self._total_count,
+                self.hard_order,
+                self._reciprocal,
+                coefficients,
+                hard,
+            )
+            shift = int(round(shifted))
             truncation = tol
         if coefficients.any():
-            log_spectrum += sfft.rfft(coefficients)
-        spectrum = np.exp(log_spectrum + const)
-        if hard_spectrum is not None:
-            spectrum *= hard_spectrum
+            spectrum = np.exp(sfft.rfft(coefficients) + const)
+        else:
+            spectrum = np.full(width // 2 + 1, np.exp(const), dtype=complex)
+        if kernels is not None and n_hard:
+            pick = hard[:n_hard]
+            roots = np.exp((-2j * np.pi / width) * np.arange(width))
+            kernels.hard_spectrum(p[pick], self.k[pick], self.count[pick], roots, spectrum)
         if extra is not None:
             offset, dense = extra
             folded = np.bincount(
@@ -337,103 +333,6 @@ class SeriesKernel:
         law = sfft.irfft(spectrum, width)
         law = np.roll(law, -((window.start - shift) % width))
         return law, truncation
-
-    def _add_series(
-        self,
-        coefficients: FloatArray,
-        theta: FloatArray,
-        need: FloatArray,
-        flip: NDArray[np.bool_],
-        width: int,
-    ) -> None:
-        """Add the log-series terms of every class with ``need > 0`` into ``coefficients``.
-
-        Round ``r`` adds ``(-1)^(r+1) theta^r / r`` of every class still
-        active; the active set is compacted at rounds 2, 3, 5, 8, ... (a class
-        may get a few terms more than it needs, never fewer).
-        """
-        top = int(need.max()) if need.size else 0
-        if top <= 0:
-            return
-        sel = np.flatnonzero(need > 0) if need.min() <= 0 else None
-        th = theta if sel is None else theta[sel]
-        key = self._key + self._nkeys * flip
-        cnt = self.count
-        if sel is not None:
-            key, need, cnt = key[sel], need[sel], cnt[sel]
-        pw = th.copy() if self._ones else th * cnt
-        positions: list[IntArray] = []
-        values: list[FloatArray] = []
-        signed = self._signed
-        checkpoint, following = 2, 3
-        for r in range(1, top + 1):
-            if r == checkpoint:
-                keep = np.flatnonzero(need >= r)
-                th, key, need, pw = th[keep], key[keep], need[keep], pw[keep]
-                checkpoint, following = following, checkpoint + following
-                top = int(need.max())
-            if r > 1:
-                pw *= th
-            if pw.size <= _RAGGED_FINISH:  # few rows left: finish them without rounds
-                self._finish(positions, values, pw, th, key, need, r, width)
-                break
-            sums = np.bincount(key, weights=pw, minlength=2 * self._nkeys)
-            positions.append(np.mod(signed * r, width))
-            values.append(np.asarray(sums * ((1.0 if r % 2 == 1 else -1.0) / r), dtype=np.float64))
-        coefficients += np.bincount(
-            np.concatenate(positions), weights=np.concatenate(values), minlength=width
-        )
-
-    def _finish(
-        self,
-        positions: list[IntArray],
-        values: list[FloatArray],
-        pw: FloatArray,
-        th: FloatArray,
-        key: IntArray,
-        need: FloatArray,
-        r: int,
-        width: int,
-    ) -> None:
-        """Terms ``r .. need`` of the remaining rows (``pw`` holds ``count * theta^r``).
-
-        Rows are sorted by need and taken in blocks whose matrices (rows x
-        terms) stay near ``2^18`` numbers; each block uses its largest need.
-        """
-        order = np.argsort(-need, kind="stable")
-        pw, th, key, need = pw[order], th[order], key[order], need[order]
-        signed = self._signed[key]
-        a = 0
-        while a < pw.size:
-            cols = max(int(need[a]) - r + 1, 1)
-            half = int(np.searchsorted(-need, -(need[a] + r) / 2.0, side="right"))
-            b = min(pw.size, a + max(1, _MATRIX_FINISH // cols), max(half, a + 1))
-            ratio = np.broadcast_to(th[a:b, None], (b - a, cols)).copy()
-            ratio[:, 0] = pw[a:b]
-            powers = np.cumprod(ratio, axis=1)  # count * theta^(r + j)
-            r_all = np.arange(r, r + cols)
-            weight = np.where(r_all % 2 == 1, 1.0, -1.0) / r_all
-            positions.append(np.mod(signed[a:b, None] * r_all[None, :], width).ravel())
-            values.append((powers * weight[None, :]).ravel())
-            a = b
-
-    @staticmethod
-    def _hard_spectrum(
-        p: FloatArray, k: IntArray, count: FloatArray, width: int
-    ) -> NDArray[np.complex128]:
-        """``prod (1 - p + p w^k)^count`` at the frequencies ``w`` of the window."""
-        freq = np.arange(width // 2 + 1)
-        roots = np.exp((-2j * np.pi / width) * np.arange(width))
-        out = np.ones(freq.size, dtype=complex)
-        step = max(1, (1 << 20) // freq.size)
-        integral = bool(np.all(count == 1.0))
-        for a in range(0, p.size, step):
-            pp = p[a : a + step, None]
-            term = (1.0 - pp) + pp * roots[np.mod(k[a : a + step, None] * freq[None, :], width)]
-            if not integral:
-                term = term ** count[a : a + step, None]
-            out *= np.prod(term, axis=0)
-        return out
 
 
 def grid_law(

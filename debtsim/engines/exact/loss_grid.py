@@ -14,13 +14,17 @@ grid points placed around the conditional mean) through its logarithm::
     log(1 - p + p x^k) = log(p) + k log x + sum_r (-1)^(r+1) theta^r x^(-r k) / r,
     theta = (1 - p) / p                                     (p > 1/2)
 
-The work is prepared once per run (:class:`SeriesKernel`): classes are
-grouped by their grid loss ``k``, so round ``r`` of the series needs only the
-power sums ``sum count * theta^r`` per distinct ``k`` (one ``bincount``), placed
-at ``+-r k`` modulo ``W``; a node costs ``sum_i R_i`` multiply-adds plus one
-real FFT pair, however wide the window.  ``R_i``, the number of terms obligor
-*i* needs, follows from the truncation bound ``theta^(R+1) / ((R+1)(1 -
-theta)) <= tolerance / n`` (about 10 for a 1% PD).  Obligors within about 0.1%
+The work is prepared once per run (:class:`SeriesKernel`); at each node one
+compiled pass over the classes (:mod:`debtsim.engines.exact.node_kernels`)
+adds every class's terms ``(-1)^(r+1) count theta^r / r`` straight into the
+window's coefficient array at ``+-r k`` modulo ``W`` (the position advances
+by a fixed step), so a node costs ``sum_i R_i`` multiply-adds plus one real
+FFT pair, however wide the window, and no array of the book's size beyond
+the probabilities.  ``R_i``, the number of terms obligor *i* needs, is the
+first ``R >= 1`` with ``theta^(R+1) / ((R+1)(1 - theta)) <= tolerance / n``
+(a bound on the dropped tail ``sum_{r>R} theta^r / r``; about 10 terms for
+a 1% PD), so the dropped part of ``log G`` is at most ``tolerance`` at every
+frequency.  Obligors within about 0.1%
 of ``p = 1/2``, where the series converges slowly, are multiplied in exactly
 as ``1 - p + p w^k`` at the window's frequencies ``w``; linked groups enter as
 their exact joint loss laws, convolved together (:func:`product_law`),

@@ -179,3 +179,18 @@ def test_law_with_many_hard_classes_matches_brute_force(hard_order: int) -> None
     got, truncation = kernel.law(kernel.node(p), Window(0, law.size))
     np.testing.assert_allclose(got, law, rtol=0, atol=1e-13)
     assert truncation == kernel.tolerance
+
+
+def test_kernels_are_cached_on_disk_and_numba_is_a_dependency() -> None:
+    """README (Performance): numba compiles the per-node kernels once and caches them on disk."""
+    import tomllib
+
+    from numba.core.caching import NullCache
+
+    from tests.conftest import REPO_ROOT
+
+    kernels = compiled()
+    for name in kernels.__all__:
+        assert not isinstance(getattr(kernels, name)._cache, NullCache), name
+    project = tomllib.loads((REPO_ROOT / "pyproject.toml").read_text(encoding="utf-8"))
+    assert any(d.startswith("numba") for d in project["project"]["dependencies"])
